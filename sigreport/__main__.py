@@ -1,0 +1,3 @@
+from sigreport.cli import main
+
+main()

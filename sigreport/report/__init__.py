@@ -1,0 +1,1 @@
+"""sigreport.report"""
