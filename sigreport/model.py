@@ -157,6 +157,9 @@ class Stack:
     role_reason: str = "not inferred"
     confidence: float = 0.0
     role_source: str = "inferred"  # "inferred" or "case file"
+    # Equal for two stacks whose stored values share one scaling to real-world values
+    # (RescaleSlope/Intercept or Real World Value Mapping); None when frames differ.
+    scaling_key: str | None = None
 
     @property
     def voxel_volume_mm3(self) -> float:
