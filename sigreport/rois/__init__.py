@@ -1,1 +1,31 @@
-"""sigreport.rois"""
+"""ROIs: the case file, physical-space regions, masks, and their sampling onto every series.
+
+study index -> series roles -> volumes -> [ROIs] -> alignment -> measurements
+"""
+
+from sigreport.rois.case import load_case
+from sigreport.rois.masks import ContourRegion, GridRegion, load_mask_region
+from sigreport.rois.propagate import RoiSample, max_diameter_mm, sample_region, volume_ml
+from sigreport.rois.regions import (
+    BoxRegion,
+    EllipsoidRegion,
+    Region,
+    SphereRegion,
+    build_region,
+)
+
+__all__ = [
+    "load_case",
+    "Region",
+    "SphereRegion",
+    "EllipsoidRegion",
+    "BoxRegion",
+    "GridRegion",
+    "ContourRegion",
+    "build_region",
+    "load_mask_region",
+    "RoiSample",
+    "sample_region",
+    "volume_ml",
+    "max_diameter_mm",
+]
