@@ -1,0 +1,675 @@
+"""From measurements to a characterization: ratios, grades, enhancement, suppression, flow void,
+controls and signal-behaviour rules (interface.md, findings.json definitions).
+
+Every number here is a ratio of medians on one series, so the arbitrary scaling each series
+carries cancels: multiplying a series by a positive factor changes no ratio, grade, percentage
+or flag (the one exception is ``raw_percent``, reported only when two series share a scaling).
+Thresholds come from the lexicon (``thresholds.toml``) and are compared with the values as
+findings.json prints them (ratios to 4 decimals, percentages to 2).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+from sigreport.measure.rules import (
+    Rules,
+    grade_of,
+    grade_phrase,
+    rounded_percent,
+    rounded_ratio,
+)
+from sigreport.model import (
+    Acquisition,
+    EnhancementPattern,
+    Grade,
+    MeasuredRoi,
+    MeasuredStudy,
+    QcLevel,
+    QcNote,
+    RoiKind,
+    RoiStats,
+    Role,
+    SeriesMeasurement,
+)
+
+#: Pre -> post pairs for enhancement, the first the study has is used (interface.md).
+ENHANCEMENT_PAIRS: tuple[tuple[Role, Role], ...] = (
+    (Role.T1, Role.T1POST),
+    (Role.T1FS, Role.T1POSTFS),
+)
+#: Unsuppressed -> suppressed pairs; the first the study has is used (interface.md).
+SUPPRESSION_PAIRS: dict[str, tuple[tuple[Role, Role], ...]] = {
+    "fluid": ((Role.T2, Role.FLAIR),),
+    "fat": (
+        (Role.T1, Role.T1FS),
+        (Role.T1POST, Role.T1POSTFS),
+        (Role.T2, Role.T2FS),
+        (Role.T2, Role.STIR),
+    ),
+}
+
+
+def _r(value: float | None, digits: int) -> float | None:
+    return None if value is None else round(float(value), digits)
+
+
+# --------------------------------------------------------------------------------------------
+# Results
+
+
+@dataclass(frozen=True)
+class SignalResult:
+    """A lesion on one series: its statistics, ratio to the reference, grade and phrase."""
+
+    stats: RoiStats
+    ratio: float | None = None
+    grade: Grade | None = None
+    phrase: str | None = None  # grade with qualifier, e.g. "markedly hyperintense"
+
+    def to_json(self) -> dict[str, Any]:
+        out: dict[str, Any] = dict(self.stats.to_json())
+        out["ratio"] = _r(self.ratio, 4)
+        out["grade"] = self.grade.value if self.grade is not None else None
+        return out
+
+
+@dataclass(frozen=True)
+class EnhancementResult:
+    """Enhancement from a pre / post pair; all None when the study has no pair."""
+
+    pre: Role | None = None
+    post: Role | None = None
+    percent: float | None = None
+    enhancing: bool | None = None
+    pattern: EnhancementPattern | None = None
+    raw_percent: float | None = None  # only when pre and post share settings and scaling
+    shell_percent: float | None = None
+    core_percent: float | None = None
+
+    def to_json(self) -> dict[str, Any]:
+        out: dict[str, Any] = {
+            "pre": self.pre.value if self.pre is not None else None,
+            "post": self.post.value if self.post is not None else None,
+            "percent": _r(self.percent, 2),
+            "enhancing": self.enhancing,
+            "pattern": self.pattern.value if self.pattern is not None else None,
+        }
+        if self.raw_percent is not None:
+            out["raw_percent"] = _r(self.raw_percent, 2)
+        return out
+
+
+@dataclass(frozen=True)
+class SuppressionResult:
+    """Suppression of one kind ("fluid" or "fat"); source/target None when no pair."""
+
+    kind: str
+    source: Role | None = None
+    target: Role | None = None
+    drop_percent: float | None = None
+    suppressed: bool | None = None
+    reliable: bool = True  # False when the matching control failed in this study
+    specific: bool = True  # False for a STIR-based fat pair (STIR nulls every short-T1 tissue)
+
+    def to_json(self) -> dict[str, Any]:
+        out: dict[str, Any] = {
+            "from": self.source.value if self.source is not None else None,
+            "to": self.target.value if self.target is not None else None,
+            "drop_percent": _r(self.drop_percent, 2),
+            "suppressed": self.suppressed,
+        }
+        if not self.reliable:
+            out["reliable"] = False
+        return out
+
+
+@dataclass(frozen=True)
+class LesionResult:
+    """One lesion characterized; ``to_json`` is exactly the interface.md lesion object."""
+
+    id: str
+    site: str | None
+    reference: str | None
+    volume_ml: float | None
+    max_diameter_mm: float | None
+    signal: dict[Role, SignalResult | None]
+    enhancement: EnhancementResult
+    suppression: dict[str, SuppressionResult]
+    flow_void: bool
+    behaviour: tuple[str, ...] = ()
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "id": self.id,
+            "site": self.site,
+            "reference": self.reference,
+            "volume_ml": _r(self.volume_ml, 4),
+            "max_diameter_mm": _r(self.max_diameter_mm, 2),
+            "signal": {
+                role.value: (s.to_json() if s is not None else None)
+                for role, s in self.signal.items()
+            },
+            "enhancement": self.enhancement.to_json(),
+            "suppression": {kind: s.to_json() for kind, s in self.suppression.items()},
+            "flow_void": self.flow_void,
+            "behaviour": list(self.behaviour),
+        }
+
+
+@dataclass(frozen=True)
+class Characterization:
+    """The characterization stage's output: lesions, the ``rois`` entries of findings.json
+    (reference and control ROIs) and the stage's qc notes."""
+
+    lesions: tuple[LesionResult, ...] = ()
+    rois: tuple[dict[str, Any], ...] = ()
+    qc: tuple[QcNote, ...] = ()
+
+
+# --------------------------------------------------------------------------------------------
+# Helpers
+
+
+def _median(m: SeriesMeasurement | None) -> float | None:
+    return m.stats.median if m is not None and m.stats is not None else None
+
+
+def _ratio(num: float | None, den: float | None) -> float | None:
+    if num is None or den is None or not den > 0:
+        return None
+    return num / den
+
+
+def _percent_change(after: float | None, before: float | None) -> float | None:
+    """100 * (after / before - 1), None when either is missing or ``before`` is not positive."""
+    q = _ratio(after, before)
+    return None if q is None else 100.0 * (q - 1.0)
+
+
+def _drop(before: float | None, after: float | None) -> float | None:
+    """100 * (1 - after / before): the suppression drop."""
+    q = _ratio(after, before)
+    return None if q is None else 100.0 * (1.0 - q)
+
+
+def _first_pair(pairs: tuple[tuple[Role, Role], ...], roles: set[Role]) -> tuple[Role, Role] | None:
+    for a, b in pairs:
+        if a in roles and b in roles:
+            return a, b
+    return None
+
+
+_SETTINGS = ("repetition_time_ms", "echo_time_ms", "inversion_time_ms", "flip_angle_deg")
+_SEQUENCE = (
+    "scanning_sequence",
+    "sequence_variant",
+    "scan_options",
+    "sequence_name",
+    "mr_acquisition_type",
+)
+
+
+def same_acquisition(a: Acquisition, b: Acquisition) -> bool:
+    """True when two series share TR, TE, TI, flip angle and sequence (contrast agent aside).
+
+    TR and TE must be known; TI and flip angle count as equal when both are absent.
+    """
+    if a.repetition_time_ms is None or a.echo_time_ms is None:
+        return False
+    for name in _SETTINGS:
+        x, y = getattr(a, name), getattr(b, name)
+        if (x is None) != (y is None):
+            return False
+        if x is not None and not math.isclose(x, y, rel_tol=1e-6, abs_tol=1e-6):
+            return False
+    return all(getattr(a, name) == getattr(b, name) for name in _SEQUENCE)
+
+
+def _pattern(
+    shell: float | None, core: float | None, enhancing: bool | None, rules: Rules
+) -> EnhancementPattern | None:
+    """The enhancement pattern from the shell's and the core's percent enhancement."""
+    e = rules.thresholds.enhancement
+    if shell is None or core is None:
+        # Without a shell / core split a non-enhancing lesion still has the pattern "none".
+        return EnhancementPattern.NONE if enhancing is False else None
+    s, c = rounded_percent(shell), rounded_percent(core)
+    lo = e.enhancing_min_percent
+    if s >= lo and c <= e.core_max_percent_for_rim:
+        return EnhancementPattern.RIM
+    if s >= lo and c >= lo and min(s, c) / max(s, c) >= e.solid_min_core_to_shell:
+        return EnhancementPattern.SOLID
+    if s < lo and c < lo and not enhancing:
+        return EnhancementPattern.NONE
+    return EnhancementPattern.HETEROGENEOUS
+
+
+@dataclass
+class _Context:
+    measured: MeasuredStudy
+    rules: Rules
+    roles: list[Role]  # measured roles in Role order, UNKNOWN left out
+    pairs: dict[str, tuple[Role, Role] | None]
+    qc: list[QcNote] = field(default_factory=list)
+    failed: set[str] = field(default_factory=set)
+
+    def note(self, level: QcLevel, code: str, message: str) -> None:
+        self.qc.append(QcNote(level, code, message))
+
+
+def _measurement(roi: MeasuredRoi | None, role: Role) -> SeriesMeasurement | None:
+    return roi.by_role.get(role) if roi is not None else None
+
+
+def _normalized_median(
+    roi: MeasuredRoi, ref: MeasuredRoi | None, role: Role
+) -> tuple[float | None, bool]:
+    """The ROI's median on ``role`` divided by the reference's (or raw when there is no
+    reference); the flag says whether it was normalized."""
+    own = _median(_measurement(roi, role))
+    if ref is None:
+        return own, False
+    return _ratio(own, _median(_measurement(ref, role))), True
+
+
+# --------------------------------------------------------------------------------------------
+# The stage
+
+
+def characterize(measured: MeasuredStudy, rules: Rules) -> Characterization:
+    """Ratios, grades, enhancement, suppression, flow void, controls and behaviour.
+
+    Parameters
+    ----------
+    measured
+        Every ROI measured on every measured series, the stacks, and the noise sigma per role.
+    rules
+        The lexicon (:func:`sigreport.measure.load_rules`).
+
+    Returns
+    -------
+    Characterization
+        ``lesions`` in case-file order; ``rois`` the findings.json entries of the reference and
+        control ROIs (with SNR per role and, for controls, the suppression check); ``qc`` the
+        stage's notes (unmeasured ROIs, heterogeneous references, failed controls, STIR-based fat
+        flags, disagreeing raw enhancement...).
+
+    Notes
+    -----
+    Pairs are chosen once per study: enhancement T1 -> T1POST, else T1FS -> T1POSTFS; fluid
+    suppression T2 -> FLAIR; fat suppression the first of T1 -> T1FS, T1POST -> T1POSTFS,
+    T2 -> T2FS, T2 -> STIR. A control ROI is normalized by its own ``reference`` when it names
+    one, else by the first lesion's reference, else by the first reference ROI; with no
+    reference at all its drop uses raw medians (valid only if the two series share a scaling).
+    """
+    roles = [r for r in Role if r is not Role.UNKNOWN and r in measured.stacks]
+    role_set = set(roles)
+    ctx = _Context(
+        measured=measured,
+        rules=rules,
+        roles=roles,
+        pairs={
+            "enhancement": _first_pair(ENHANCEMENT_PAIRS, role_set),
+            "fluid": _first_pair(SUPPRESSION_PAIRS["fluid"], role_set),
+            "fat": _first_pair(SUPPRESSION_PAIRS["fat"], role_set),
+        },
+    )
+    by_id = {roi.spec.id: roi for roi in measured.rois}
+    references = [r for r in measured.rois if r.spec.kind is RoiKind.REFERENCE]
+    lesions = [r for r in measured.rois if r.spec.kind is RoiKind.LESION]
+    controls = [r for r in measured.rois if r.spec.kind is RoiKind.CONTROL]
+
+    _note_unmeasured(ctx)
+    for ref in references:
+        _check_homogeneous(ctx, ref)
+
+    def reference_of(roi: MeasuredRoi) -> MeasuredRoi | None:
+        wanted = roi.spec.reference
+        if wanted is not None:
+            found = by_id.get(wanted)
+            if found is not None and found.spec.kind is RoiKind.REFERENCE:
+                return found
+            ctx.note(
+                QcLevel.WARNING,
+                "reference-not-found",
+                f"{roi.spec.id} names reference {wanted!r}, which is not a reference ROI; "
+                + (f"using {references[0].spec.id}" if references else "no reference ROI"),
+            )
+        return references[0] if references else None
+
+    lesion_refs = {lesion.spec.id: reference_of(lesion) for lesion in lesions}
+    if lesions and not references:
+        ctx.note(
+            QcLevel.WARNING,
+            "no-reference",
+            "no reference ROI: ratios, grades, enhancement and suppression cannot be computed",
+        )
+    default_ref = (
+        lesion_refs[lesions[0].spec.id] if lesions else (references[0] if references else None)
+    )
+
+    roi_entries: list[dict[str, Any]] = []
+    for roi in references:
+        roi_entries.append(_roi_entry(ctx, roi))
+    for control in controls:
+        ref = reference_of(control) if control.spec.reference is not None else default_ref
+        entry = _roi_entry(ctx, control)
+        check = _check_control(ctx, control, ref)
+        if check is not None:
+            entry["check"] = check
+        roi_entries.append(entry)
+
+    fat_pair = ctx.pairs["fat"]
+    if lesions and fat_pair is not None and fat_pair[1] is Role.STIR:
+        ctx.note(
+            QcLevel.INFO,
+            "stir-fat-not-specific",
+            "fat suppression is judged from T2 -> STIR: STIR nulls every short-T1 tissue, not "
+            "only fat (subacute blood and enhancing tissue drop too), so the fat flag is not "
+            "specific",
+        )
+
+    results = tuple(_lesion(ctx, lesion, lesion_refs[lesion.spec.id]) for lesion in lesions)
+    return Characterization(lesions=results, rois=tuple(roi_entries), qc=tuple(ctx.qc))
+
+
+def _note_unmeasured(ctx: _Context) -> None:
+    for roi in ctx.measured.rois:
+        for role in ctx.roles:
+            m = roi.by_role.get(role)
+            if m is None:
+                ctx.note(
+                    QcLevel.WARNING,
+                    "roi-not-measured",
+                    f"{roi.spec.id} on {role.value}: not sampled on this series",
+                )
+            elif m.stats is None:
+                ctx.note(
+                    QcLevel.WARNING,
+                    "roi-not-measured",
+                    f"{roi.spec.id} on {role.value}: {m.note or 'could not be measured'}",
+                )
+            elif m.note:
+                ctx.note(
+                    QcLevel.INFO, "roi-partly-measured", f"{roi.spec.id} on {role.value}: {m.note}"
+                )
+
+
+def _check_homogeneous(ctx: _Context, ref: MeasuredRoi) -> None:
+    limit = ctx.rules.thresholds.reference.max_cv
+    high = []
+    for role in ctx.roles:
+        m = ref.by_role.get(role)
+        if m is None or m.stats is None or not m.stats.mean > 0:
+            continue
+        cv = m.stats.sd / m.stats.mean
+        if cv > limit:
+            high.append(f"{role.value} {cv:.2f}")
+    if high:
+        ctx.note(
+            QcLevel.WARNING,
+            "reference-heterogeneous",
+            f"reference ROI {ref.spec.id} is not homogeneous: coefficient of variation "
+            f"{', '.join(high)} (above {limit:.2f}); check it for partial volume or other tissue",
+        )
+
+
+def _roi_entry(ctx: _Context, roi: MeasuredRoi) -> dict[str, Any]:
+    tissue = ctx.rules.tissue(roi.spec.tissue)
+    snr: dict[str, float | None] = {}
+    for role in ctx.roles:
+        median = _median(roi.by_role.get(role))
+        if median is None:
+            continue
+        sigma = ctx.measured.noise_sigma.get(role)
+        snr[role.value] = _r(median / sigma, 2) if sigma is not None and sigma > 0 else None
+    return {
+        "id": roi.spec.id,
+        "kind": roi.spec.kind.value,
+        "tissue": tissue.name if tissue is not None else roi.spec.tissue,
+        "volume_ml": _r(roi.volume_ml, 4),
+        "snr": snr,
+    }
+
+
+def _check_control(
+    ctx: _Context, control: MeasuredRoi, ref: MeasuredRoi | None
+) -> dict[str, Any] | None:
+    """Check that a control tissue drops on its suppression pair; record failures in ctx."""
+    spec = control.spec
+    tissue = ctx.rules.tissue(spec.tissue)
+    if tissue is None or tissue.check is None:
+        ctx.note(
+            QcLevel.INFO,
+            "control-not-checked",
+            f"control ROI {spec.id}: tissue {spec.tissue!r} has no suppression check in the "
+            "lexicon (tissues.toml check = fluid / fat)",
+        )
+        return None
+    kind = tissue.check
+    pair = ctx.pairs[kind]
+    if pair is None:
+        ctx.note(
+            QcLevel.INFO,
+            "control-not-checked",
+            f"control ROI {spec.id} ({tissue.name}): the study has no {kind}-suppression pair",
+        )
+        return None
+    before, normalized = _normalized_median(control, ref, pair[0])
+    after, _ = _normalized_median(control, ref, pair[1])
+    drop = _drop(before, after)
+    minimum = (
+        ctx.rules.thresholds.controls.fluid_min_drop_percent
+        if kind == "fluid"
+        else ctx.rules.thresholds.controls.fat_min_drop_percent
+    )
+    check: dict[str, Any] = {
+        "kind": kind,
+        "from": pair[0].value,
+        "to": pair[1].value,
+        "reference": ref.spec.id if ref is not None and normalized else None,
+        "drop_percent": _r(drop, 2),
+        "passed": None,
+    }
+    if drop is None:
+        ctx.note(
+            QcLevel.WARNING,
+            "control-not-measured",
+            f"control ROI {spec.id} ({tissue.name}) could not be measured on "
+            f"{pair[0].value} and {pair[1].value}: {kind} suppression is not checked",
+        )
+        return check
+    passed = rounded_percent(drop) >= minimum
+    check["passed"] = passed
+    if not passed:
+        ctx.failed.add(kind)
+        ctx.note(
+            QcLevel.WARNING,
+            f"{kind}-suppression-failed",
+            f"control ROI {spec.id} ({tissue.name}) dropped {drop:.0f} % from {pair[0].value} to "
+            f"{pair[1].value} (expected at least {minimum:.0f} %): {kind} suppression failed in "
+            f"this study, so the lesions' {kind}-suppression flags are unreliable",
+        )
+    return check
+
+
+def _lesion(ctx: _Context, lesion: MeasuredRoi, ref: MeasuredRoi | None) -> LesionResult:
+    rules = ctx.rules
+    signal: dict[Role, SignalResult | None] = {}
+    ratios: dict[Role, float | None] = {}
+    for role in ctx.roles:
+        m = lesion.by_role.get(role)
+        if m is None or m.stats is None:
+            signal[role] = None
+            ratios[role] = None
+            continue
+        ref_median = _median(_measurement(ref, role))
+        ratio = _ratio(m.stats.median, ref_median)
+        if ref is not None and ref_median is not None and not ref_median > 0:
+            ctx.note(
+                QcLevel.WARNING,
+                "reference-not-positive",
+                f"reference ROI {ref.spec.id} has median {ref_median:g} on {role.value}: "
+                f"{lesion.spec.id} cannot be normalized there",
+            )
+        ratios[role] = ratio
+        signal[role] = SignalResult(
+            stats=m.stats,
+            ratio=ratio,
+            grade=grade_of(ratio, rules),
+            phrase=grade_phrase(ratio, rules),
+        )
+
+    enhancement = _enhancement(ctx, lesion, ref, ratios)
+    suppression = {kind: _suppression(ctx, kind, ratios) for kind in ("fluid", "fat")}
+    flow_void = _flow_void(ctx, lesion, signal)
+
+    fat = suppression["fat"]
+    facts: dict[str, Any] = {role.value: s.grade for role, s in signal.items() if s is not None}
+    for kind, result in suppression.items():
+        facts[f"{kind}_suppressed"] = result.suppressed if result.reliable else None
+    facts["fat_suppression_specific"] = fat.specific if fat.source is not None else None
+    facts["enhancing"] = enhancement.enhancing
+    facts["pattern"] = enhancement.pattern
+    facts["flow_void"] = flow_void
+    behaviour = tuple(key for key, rule in rules.behaviour.items() if rule.matches(facts))
+
+    return LesionResult(
+        id=lesion.spec.id,
+        site=lesion.spec.site,
+        reference=ref.spec.id if ref is not None else None,
+        volume_ml=lesion.volume_ml,
+        max_diameter_mm=lesion.max_diameter_mm,
+        signal=signal,
+        enhancement=enhancement,
+        suppression=suppression,
+        flow_void=flow_void,
+        behaviour=behaviour,
+    )
+
+
+def _part_percent(
+    lesion: MeasuredRoi, ref: MeasuredRoi | None, pre: Role, post: Role, part: str
+) -> float | None:
+    """Percent enhancement of the lesion's shell or core, each normalized by the reference."""
+
+    def part_ratio(role: Role) -> float | None:
+        m = lesion.by_role.get(role)
+        stats = getattr(m, part) if m is not None else None
+        return _ratio(stats.median if stats is not None else None, _median(_measurement(ref, role)))
+
+    return _percent_change(part_ratio(post), part_ratio(pre))
+
+
+def _enhancement(
+    ctx: _Context,
+    lesion: MeasuredRoi,
+    ref: MeasuredRoi | None,
+    ratios: Mapping[Role, float | None],
+) -> EnhancementResult:
+    pair = ctx.pairs["enhancement"]
+    if pair is None:
+        return EnhancementResult()
+    pre, post = pair
+    e = ctx.rules.thresholds.enhancement
+    percent = _percent_change(ratios.get(post), ratios.get(pre))
+    enhancing = None if percent is None else rounded_percent(percent) >= e.enhancing_min_percent
+    shell = _part_percent(lesion, ref, pre, post, "shell")
+    core = _part_percent(lesion, ref, pre, post, "core")
+    pattern = None if percent is None else _pattern(shell, core, enhancing, ctx.rules)
+    if percent is not None and pattern is None:
+        ctx.note(
+            QcLevel.INFO,
+            "enhancement-pattern-unknown",
+            f"{lesion.spec.id}: too small to split into shell and core; pattern not determined",
+        )
+
+    raw = None
+    stacks = ctx.measured.stacks
+    a, b = stacks[pre], stacks[post]
+    if (
+        a.scaling_key is not None
+        and a.scaling_key == b.scaling_key
+        and same_acquisition(a.acquisition, b.acquisition)
+    ):
+        raw = _percent_change(_median(lesion.by_role.get(post)), _median(lesion.by_role.get(pre)))
+        if raw is not None and percent is not None:
+            gap = abs(raw - percent)
+            if gap > e.raw_tolerance_percent:
+                ctx.note(
+                    QcLevel.WARNING,
+                    "enhancement-normalization-disagrees",
+                    f"{lesion.spec.id}: enhancement {percent:.1f} % normalized by the reference "
+                    f"but {raw:.1f} % un-normalized ({pre.value} and {post.value} share settings "
+                    f"and scaling); they differ by {gap:.1f} points (tolerance "
+                    f"{e.raw_tolerance_percent:g}): the reference tissue itself changed",
+                )
+    return EnhancementResult(
+        pre=pre,
+        post=post,
+        percent=percent,
+        enhancing=enhancing,
+        pattern=pattern,
+        raw_percent=raw,
+        shell_percent=shell,
+        core_percent=core,
+    )
+
+
+def _suppression(
+    ctx: _Context, kind: str, ratios: Mapping[Role, float | None]
+) -> SuppressionResult:
+    pair = ctx.pairs[kind]
+    if pair is None:
+        return SuppressionResult(kind=kind)
+    source, target = pair
+    drop = _drop(ratios.get(source), ratios.get(target))
+    minimum = ctx.rules.thresholds.suppression.suppressed_min_drop_percent
+    return SuppressionResult(
+        kind=kind,
+        source=source,
+        target=target,
+        drop_percent=drop,
+        suppressed=None if drop is None else rounded_percent(drop) >= minimum,
+        reliable=kind not in ctx.failed,
+        specific=not (kind == "fat" and target is Role.STIR),
+    )
+
+
+def _flow_void(
+    ctx: _Context, lesion: MeasuredRoi, signal: Mapping[Role, SignalResult | None]
+) -> bool:
+    """Dark on every measured series and near the noise floor (interface.md ``flow_void``).
+
+    Series where the lesion has no ratio do not count; at least ``[flow_void] min_series``
+    must. The noise criterion (median <= noise_factor x sigma sqrt(pi/2), the Rayleigh mean of
+    the background, Gudbjartsson & Patz 1995) must hold on every counted series with a noise
+    estimate, and at least one must have one.
+    """
+    t = ctx.rules.thresholds.flow_void
+    counted = [(role, s) for role, s in signal.items() if s is not None and s.ratio is not None]
+    if len(counted) < t.min_series:
+        return False
+    if not all(rounded_ratio(s.ratio) <= t.max_ratio for _, s in counted):  # type: ignore[arg-type]
+        return False
+    checked = 0
+    for role, s in counted:
+        sigma = ctx.measured.noise_sigma.get(role)
+        if sigma is None or not sigma > 0:
+            continue
+        checked += 1
+        if s.stats.median > t.noise_factor * sigma * math.sqrt(math.pi / 2.0):
+            return False
+    if checked == 0:
+        ctx.note(
+            QcLevel.INFO,
+            "flow-void-unverified",
+            f"{lesion.spec.id} is dark on every series, but no series has a noise estimate to "
+            "tell a flow void from merely dark tissue",
+        )
+        return False
+    return True
