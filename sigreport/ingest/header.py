@@ -1,0 +1,491 @@
+"""Header-only reading of one file into per-frame records (classic and Enhanced MR).
+
+A file is read up to its pixel data (``stop_before_pixels``); the pixel data element's tag and
+length are then read from the same handle, so a missing or truncated pixel data element is found
+without reading the pixels. Anything that makes a file unusable becomes a one-line reason.
+"""
+
+from __future__ import annotations
+
+import os
+import struct
+import warnings
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import pydicom
+from pydicom.dataset import Dataset
+from pydicom.errors import InvalidDicomError
+from pydicom.uid import UID, DeflatedExplicitVRLittleEndian
+
+from sigreport.model import Acquisition, StudyInfo
+
+MR_IMAGE = "1.2.840.10008.5.1.4.1.1.4"
+ENHANCED_MR = "1.2.840.10008.5.1.4.1.1.4.1"
+LEGACY_ENHANCED_MR = "1.2.840.10008.5.1.4.1.1.4.4"
+SECONDARY_CAPTURE = (
+    "1.2.840.10008.5.1.4.1.1.7",
+    "1.2.840.10008.5.1.4.1.1.7.1",
+    "1.2.840.10008.5.1.4.1.1.7.2",
+    "1.2.840.10008.5.1.4.1.1.7.3",
+    "1.2.840.10008.5.1.4.1.1.7.4",
+)
+MULTIFRAME_CLASSES = (ENHANCED_MR, LEGACY_ENHANCED_MR)
+IMAGE_CLASSES = (MR_IMAGE, *MULTIFRAME_CLASSES, *SECONDARY_CAPTURE)
+
+_PIXEL_TAGS = {0x7FE00010, 0x7FE00008, 0x7FE00009}
+
+
+class SkipFile(Exception):
+    """Raised inside the reader with the one-line reason the file is skipped."""
+
+
+@dataclass(frozen=True)
+class Scaling:
+    """How one frame's stored values map to real-world values.
+
+    ``lut`` (with ``lut_first``) is a Real World Value LUT (PS3.3 C.7.6.16.2.11); otherwise
+    ``value = stored * slope + intercept``. ``source`` names where it came from.
+    """
+
+    slope: float = 1.0
+    intercept: float = 0.0
+    source: str = "none"  # "rescale", "pixel value transformation", "real world value mapping"
+    lut: tuple[float, ...] | None = None
+    lut_first: int = 0
+
+    def key(self) -> str:
+        if self.lut is not None:
+            return f"rwvm-lut:{self.lut_first}:{hash(self.lut)}"
+        return f"{self.source}:{self.slope!r}:{self.intercept!r}"
+
+
+@dataclass(frozen=True)
+class FrameRecord:
+    """One 2D image (a single-frame file or one frame of a multi-frame file)."""
+
+    path: Path
+    frame: int | None  # 1-based, multi-frame files only
+    sop_instance_uid: str
+    sop_class_uid: str
+    series_instance_uid: str
+    series_number: int | None
+    description: str
+    modality: str
+    frame_of_reference_uid: str | None
+    study: StudyInfo
+    rows: int
+    columns: int
+    position: tuple[float, float, float]
+    orientation: tuple[float, float, float, float, float, float]
+    pixel_spacing: tuple[float, float]  # (row spacing, column spacing), PS3.3 C.7.6.2.1.1
+    instance_number: int | None
+    acquisition_number: int | None
+    acquisition: Acquisition
+    scaling: Scaling
+    stack_id: str | None = None  # Enhanced MR FrameContent StackID
+    in_stack_position: int | None = None
+    spacing_between_slices: float | None = None
+    warnings: tuple[str, ...] = ()
+
+
+# --------------------------------------------------------------------------------------------
+# Value helpers: missing or malformed values are None, never an exception.
+
+
+def _get(ds: Dataset, keyword: str) -> Any:
+    try:
+        value = ds.get(keyword)
+    except Exception:  # a malformed element whose value cannot be converted
+        return None
+    if value is None or value == "":
+        return None
+    return value
+
+
+def _float(ds: Dataset, keyword: str) -> float | None:
+    value = _get(ds, keyword)
+    if value is None:
+        return None
+    if (
+        isinstance(value, list | tuple)
+        or hasattr(value, "__getitem__")
+        and not isinstance(value, str | bytes)
+    ):
+        if len(value) == 0:
+            return None
+        value = value[0]
+    try:
+        return float(value)
+    except (TypeError, ValueError):
+        return None
+
+
+def _int(ds: Dataset, keyword: str) -> int | None:
+    value = _float(ds, keyword)
+    return int(value) if value is not None else None
+
+
+def _str(ds: Dataset, keyword: str) -> str | None:
+    value = _get(ds, keyword)
+    if value is None:
+        return None
+    if not isinstance(value, str | bytes) and hasattr(value, "__iter__"):
+        return "\\".join(str(v) for v in value)
+    return str(value).strip() or None
+
+
+def _strs(ds: Dataset, keyword: str) -> tuple[str, ...]:
+    value = _get(ds, keyword)
+    if value is None:
+        return ()
+    if isinstance(value, str):
+        items = value.split("\\")
+    elif hasattr(value, "__iter__") and not isinstance(value, bytes):
+        items = [str(v) for v in value]
+    else:
+        items = [str(value)]
+    return tuple(s.strip().upper() for s in items if str(s).strip())
+
+
+def _floats(ds: Dataset, keyword: str, n: int) -> tuple[float, ...] | None:
+    value = _get(ds, keyword)
+    if value is None:
+        return None
+    try:
+        out = tuple(float(v) for v in value)
+    except (TypeError, ValueError):
+        return None
+    return out if len(out) == n else None
+
+
+def _first_item(ds: Dataset, keyword: str) -> Dataset | None:
+    seq = _get(ds, keyword)
+    if seq is None:
+        return None
+    try:
+        return seq[0] if len(seq) > 0 else None
+    except TypeError:
+        return None
+
+
+def study_info(ds: Dataset) -> StudyInfo:
+    return StudyInfo(
+        study_instance_uid=_str(ds, "StudyInstanceUID"),
+        study_date=_str(ds, "StudyDate"),
+        accession_number=_str(ds, "AccessionNumber"),
+        patient_name=_str(ds, "PatientName"),
+        patient_id=_str(ds, "PatientID"),
+        patient_birth_date=_str(ds, "PatientBirthDate"),
+        patient_sex=_str(ds, "PatientSex"),
+        study_description=_str(ds, "StudyDescription"),
+        study_id=_str(ds, "StudyID"),
+        referring_physician_name=_str(ds, "ReferringPhysicianName"),
+        study_time=_str(ds, "StudyTime"),
+    )
+
+
+def classic_b_value(ds: Dataset) -> float | None:
+    """The b-value of a classic image: DiffusionBValue (0018,9087), else a vendor's private
+    element checked against its private creator (common practice: Siemens (0019,xx0C) "SIEMENS
+    MR HEADER", GE (0043,xx39) "GEMS_PARM_01" first value modulo 1e9, Philips (2001,xx03)
+    "Philips Imaging DD 001")."""
+    value = _float(ds, "DiffusionBValue")
+    if value is not None:
+        return value
+    for group, creator, offset, fix in (
+        (0x0019, "SIEMENS MR HEADER", 0x0C, None),
+        (0x0043, "GEMS_PARM_01", 0x39, "ge"),
+        (0x2001, "Philips Imaging DD 001", 0x03, None),
+    ):
+        try:
+            element = ds.private_block(group, creator)[offset]
+            raw = element.value
+            if isinstance(raw, bytes):
+                raw = raw.decode("ascii", "replace").strip("\0 ")
+            if isinstance(raw, str):
+                raw = raw.split("\\")[0]
+            elif hasattr(raw, "__getitem__"):
+                raw = raw[0]
+            number = float(raw)
+        except Exception:  # absent block or element, or a value that is not a number
+            continue
+        if fix == "ge":
+            number = number % 1e9
+        return number
+    return None
+
+
+def _contrast_classic(ds: Dataset) -> str | None:
+    agent = _str(ds, "ContrastBolusAgent")
+    if agent:
+        return agent
+    item = _first_item(ds, "ContrastBolusAgentSequence")
+    if item is not None:
+        return _str(item, "CodeMeaning") or _str(item, "CodeValue") or "contrast agent"
+    return None
+
+
+def classic_acquisition(ds: Dataset) -> Acquisition:
+    """The Acquisition of a classic MR image (PS3.3 C.8.3.1 MR Image Module)."""
+    return Acquisition(
+        repetition_time_ms=_float(ds, "RepetitionTime"),
+        echo_time_ms=_float(ds, "EchoTime"),
+        inversion_time_ms=_float(ds, "InversionTime"),
+        flip_angle_deg=_float(ds, "FlipAngle"),
+        scanning_sequence=_strs(ds, "ScanningSequence"),
+        sequence_variant=_strs(ds, "SequenceVariant"),
+        scan_options=_strs(ds, "ScanOptions"),
+        sequence_name=_str(ds, "SequenceName"),
+        mr_acquisition_type=_str(ds, "MRAcquisitionType"),
+        magnetic_field_strength_t=_float(ds, "MagneticFieldStrength"),
+        contrast_agent=_contrast_classic(ds),
+        image_type=_strs(ds, "ImageType"),
+        b_value=classic_b_value(ds),
+        slice_thickness_mm=_float(ds, "SliceThickness"),
+        echo_number=_int(ds, "EchoNumbers"),
+        temporal_position=_int(ds, "TemporalPositionIdentifier"),
+    )
+
+
+def rwvm_scaling(item: Dataset) -> Scaling | None:
+    """Scaling from one Real World Value Mapping item (PS3.3 C.7.6.16.2.11), or None."""
+    lut = _get(item, "RealWorldValueLUTData")
+    if lut is not None:
+        first = _int(item, "RealWorldValueFirstValueMapped") or 0
+        return Scaling(
+            source="real world value mapping",
+            lut=tuple(float(v) for v in lut),
+            lut_first=first,
+        )
+    slope = _float(item, "RealWorldValueSlope")
+    if slope is None:
+        return None
+    intercept = _float(item, "RealWorldValueIntercept") or 0.0
+    return Scaling(slope=slope, intercept=intercept, source="real world value mapping")
+
+
+def classic_scaling(ds: Dataset) -> Scaling:
+    """RescaleSlope/Intercept, or a Real World Value Mapping, which takes precedence."""
+    item = _first_item(ds, "RealWorldValueMappingSequence")
+    if item is not None:
+        mapped = rwvm_scaling(item)
+        if mapped is not None:
+            return mapped
+    slope = _float(ds, "RescaleSlope")
+    intercept = _float(ds, "RescaleIntercept")
+    if slope is None and intercept is None:
+        return Scaling()
+    return Scaling(
+        slope=1.0 if slope is None else slope,
+        intercept=0.0 if intercept is None else intercept,
+        source="rescale",
+    )
+
+
+# --------------------------------------------------------------------------------------------
+
+
+def _pixel_element_status(fp: Any, ds: Dataset, file_size: int) -> str | None:
+    """After ``dcmread(stop_before_pixels=True)`` the handle sits at the pixel data element (if
+    any). Return None when it is present and complete, else the reason the file is unusable."""
+    start = fp.tell()
+    header = fp.read(12)
+    if len(header) < 8:
+        return "no pixel data"
+    implicit_vr, little_endian = ds.original_encoding
+    big = little_endian is False
+    implicit = bool(implicit_vr)
+    fmt = ">" if big else "<"
+    group, element = struct.unpack(fmt + "HH", header[:4])
+    tag = (group << 16) | element
+    if tag not in _PIXEL_TAGS:
+        return "no pixel data"
+    if implicit:
+        (length,) = struct.unpack(fmt + "I", header[4:8])
+        header_len = 8
+    else:
+        vr = header[4:6]
+        if vr in (b"OB", b"OW", b"OF", b"OD", b"OL", b"OV", b"UN", b"SQ", b"UT", b"UC", b"UR"):
+            (length,) = struct.unpack(fmt + "I", header[8:12])
+            header_len = 12
+        else:
+            (length,) = struct.unpack(fmt + "H", header[6:8])
+            header_len = 8
+    if length == 0xFFFFFFFF:
+        # Encapsulated: at least the Basic Offset Table item and one fragment must follow.
+        if file_size - start - header_len < 16:
+            return "truncated: encapsulated pixel data has no fragments"
+        return None
+    available = file_size - start - header_len
+    if available < length:
+        return f"truncated: pixel data declares {length} bytes, file holds {max(available, 0)}"
+    if length == 0:
+        return "no pixel data (empty Pixel Data element)"
+    return None
+
+
+def read_dataset(path: Path) -> tuple[Dataset, str | None]:
+    """Read a file's header; return the dataset and, when the file cannot be used for images,
+    the reason (``"no pixel data"``, ``"truncated: ..."``). Raise ``SkipFile`` when the file is
+    not DICOM or cannot be read."""
+    try:
+        file_size = os.path.getsize(path)
+        fp = open(path, "rb")  # noqa: SIM115 - closed below
+    except PermissionError:
+        raise SkipFile("unreadable: permission denied") from None
+    except OSError as exc:
+        raise SkipFile(f"unreadable: {exc.strerror or exc}") from None
+    with fp, warnings.catch_warnings():
+        # pydicom warns about recoverable header oddities; the scan reports only what matters.
+        warnings.simplefilter("ignore")
+        try:
+            ds = pydicom.dcmread(fp, stop_before_pixels=True)
+        except InvalidDicomError:
+            ds = _read_without_preamble(fp)
+        except (EOFError, struct.error):
+            raise SkipFile("truncated: the header ends early") from None
+        except Exception as exc:  # pydicom raises many types on corrupt input
+            raise SkipFile(f"not readable as DICOM: {type(exc).__name__}: {exc}") from None
+        ts = getattr(getattr(ds, "file_meta", None), "TransferSyntaxUID", None)
+        if ts == DeflatedExplicitVRLittleEndian:
+            # The handle points into the deflated stream: read the whole file instead.
+            return _read_full_check(path)
+        try:
+            status = _pixel_element_status(fp, ds, file_size)
+        except (struct.error, OSError):
+            status = "truncated: the pixel data element header is incomplete"
+    return ds, status
+
+
+def _read_without_preamble(fp: Any) -> Dataset:
+    """Files without the 128-byte preamble and DICM prefix (PS3.10 7.1 requires them, but old
+    writers omit them): accept only when the forced read yields an SOP Class UID."""
+    fp.seek(0)
+    try:
+        ds = pydicom.dcmread(fp, stop_before_pixels=True, force=True)
+        sop = ds.get("SOPClassUID")
+    except Exception:  # garbage read as DICOM
+        raise SkipFile("not a DICOM file (no DICM prefix)") from None
+    if not sop:
+        raise SkipFile("not a DICOM file (no DICM prefix)")
+    return ds
+
+
+def _read_full_check(path: Path) -> tuple[Dataset, str | None]:
+    try:
+        ds = pydicom.dcmread(path)
+    except Exception as exc:  # corrupt deflated stream
+        raise SkipFile(f"truncated or corrupt deflated file: {exc}") from None
+    if "PixelData" not in ds and "FloatPixelData" not in ds and "DoubleFloatPixelData" not in ds:
+        return ds, "no pixel data"
+    return ds, None
+
+
+def read_frames(path: Path) -> list[FrameRecord]:
+    """Read one file's header into frame records.
+
+    Raises
+    ------
+    SkipFile
+        With a one-line reason when the file is not DICOM, unreadable, truncated, has no pixel
+        data, is not an MR image, or lacks geometry.
+    """
+    ds, status = read_dataset(path)
+    sop_class = _str(ds, "SOPClassUID") or _str(
+        getattr(ds, "file_meta", Dataset()), "MediaStorageSOPClassUID"
+    )
+    modality = (_str(ds, "Modality") or "").upper()
+    if not sop_class:
+        raise SkipFile("no SOP Class UID (0008,0016): not a DICOM image")
+    class_name = UID(sop_class).name
+    if modality and modality != "MR":
+        raise SkipFile(f"modality {modality} ({class_name}), not MR")
+    if sop_class not in IMAGE_CLASSES:
+        raise SkipFile(f"{class_name} is not an MR image")
+    if status is not None:
+        raise SkipFile(status)
+    series_uid = _str(ds, "SeriesInstanceUID")
+    if series_uid is None:
+        raise SkipFile("missing SeriesInstanceUID (0020,000E)")
+    sop_uid = _str(ds, "SOPInstanceUID") or f"file:{path}"
+    if sop_class in MULTIFRAME_CLASSES:
+        from sigreport.ingest.enhanced import enhanced_frames
+
+        return enhanced_frames(path, ds, sop_uid, sop_class, series_uid)
+    return [classic_frame(path, ds, sop_uid, sop_class, series_uid)]
+
+
+def common_fields(ds: Dataset, series_uid: str) -> dict[str, Any]:
+    return {
+        "series_instance_uid": series_uid,
+        "series_number": _int(ds, "SeriesNumber"),
+        "description": _str(ds, "SeriesDescription") or "",
+        "modality": (_str(ds, "Modality") or "MR").upper(),
+        "frame_of_reference_uid": _str(ds, "FrameOfReferenceUID"),
+        "study": study_info(ds),
+        "instance_number": _int(ds, "InstanceNumber"),
+        "acquisition_number": _int(ds, "AcquisitionNumber"),
+    }
+
+
+def _image_size(ds: Dataset) -> tuple[int, int]:
+    rows, columns = _int(ds, "Rows"), _int(ds, "Columns")
+    if not rows or not columns:
+        raise SkipFile("missing Rows (0028,0010) or Columns (0028,0011)")
+    return rows, columns
+
+
+def classic_frame(
+    path: Path, ds: Dataset, sop_uid: str, sop_class: str, series_uid: str
+) -> FrameRecord:
+    """The frame record of a single-frame image (geometry from PS3.3 C.7.6.2)."""
+    rows, columns = _image_size(ds)
+    missing = [
+        name
+        for name, keyword, n in (
+            ("ImagePositionPatient (0020,0032)", "ImagePositionPatient", 3),
+            ("ImageOrientationPatient (0020,0037)", "ImageOrientationPatient", 6),
+            ("PixelSpacing (0028,0030)", "PixelSpacing", 2),
+        )
+        if _floats(ds, keyword, n) is None
+    ]
+    if missing:
+        what = "screen capture" if sop_class in SECONDARY_CAPTURE else "image"
+        raise SkipFile(f"{what} without geometry: missing or malformed {', '.join(missing)}")
+    position = _floats(ds, "ImagePositionPatient", 3)
+    orientation = _floats(ds, "ImageOrientationPatient", 6)
+    spacing = _floats(ds, "PixelSpacing", 2)
+    assert position is not None and orientation is not None and spacing is not None
+    check_orientation(orientation)
+    if spacing[0] <= 0 or spacing[1] <= 0:
+        raise SkipFile(f"PixelSpacing (0028,0030) must be positive, got {list(spacing)}")
+    return FrameRecord(
+        path=path,
+        frame=None,
+        sop_instance_uid=sop_uid,
+        sop_class_uid=sop_class,
+        rows=rows,
+        columns=columns,
+        position=position,  # type: ignore[arg-type]
+        orientation=orientation,  # type: ignore[arg-type]
+        pixel_spacing=spacing,  # type: ignore[arg-type]
+        acquisition=classic_acquisition(ds),
+        scaling=classic_scaling(ds),
+        spacing_between_slices=_float(ds, "SpacingBetweenSlices"),
+        **common_fields(ds, series_uid),
+    )
+
+
+def check_orientation(orientation: tuple[float, ...], *, tol: float = 1e-3) -> None:
+    """ImageOrientationPatient must be two orthogonal unit vectors (PS3.3 C.7.6.2.1.1)."""
+    r, c = orientation[:3], orientation[3:]
+    nr = sum(v * v for v in r) ** 0.5
+    nc = sum(v * v for v in c) ** 0.5
+    dot = sum(a * b for a, b in zip(r, c, strict=True))
+    if abs(nr - 1) > 10 * tol or abs(nc - 1) > 10 * tol or abs(dot) > 10 * tol:
+        raise SkipFile(
+            f"ImageOrientationPatient (0020,0037) {list(orientation)} is not two orthogonal unit "
+            f"vectors (norms {nr:.4f}, {nc:.4f}, dot {dot:.4f})"
+        )

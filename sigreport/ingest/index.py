@@ -1,0 +1,95 @@
+"""Index a study folder: every file under it, header-only, into stacks with inferred roles."""
+
+from __future__ import annotations
+
+import os
+from collections import Counter
+from collections.abc import Callable
+from dataclasses import replace
+from pathlib import Path
+
+from sigreport.errors import InputError
+from sigreport.ingest.header import FrameRecord, SkipFile, read_frames
+from sigreport.ingest.roles import _infer, load_role_bands
+from sigreport.ingest.stacks import build_stacks
+from sigreport.model import SkippedFile, StudyIndex, StudyInfo
+
+
+def _files(study_dir: Path) -> list[Path]:
+    found: list[Path] = []
+    for root, dirs, names in os.walk(study_dir):
+        dirs.sort()
+        found.extend(Path(root) / name for name in sorted(names))
+    return found
+
+
+def index_study(
+    study_dir: Path,
+    *,
+    progress: Callable[[int, int], None] | None = None,
+    site_lexicon: Path | None = None,
+) -> StudyIndex:
+    """Index every DICOM file under ``study_dir`` (recursively, any file names).
+
+    Headers only are read (pixel data are not). Files that are not DICOM, cannot be read, are
+    truncated, hold no pixel data, are not MR images or lack geometry are listed in
+    ``StudyIndex.skipped`` with a one-line reason; they never stop the scan. Each stack gets its
+    role, reason and confidence from ``infer_role``.
+
+    Parameters
+    ----------
+    study_dir
+        The study folder.
+    progress
+        Called as ``progress(done, total)`` after each file.
+    site_lexicon
+        A site lexicon folder (its ``roles.toml`` replaces the bundled one).
+
+    Raises
+    ------
+    InputError
+        When ``study_dir`` does not exist or is not a folder, or the roles lexicon is invalid.
+    """
+    study_dir = Path(study_dir)
+    if not study_dir.exists():
+        raise InputError(f"study folder {study_dir} does not exist")
+    if not study_dir.is_dir():
+        raise InputError(f"study folder {study_dir} is not a folder")
+    bands = load_role_bands(site_lexicon)
+    files = _files(study_dir)
+    records: list[FrameRecord] = []
+    skipped: list[SkippedFile] = []
+    total = len(files)
+    for done, path in enumerate(files, start=1):
+        try:
+            records.extend(read_frames(path))
+        except SkipFile as exc:
+            skipped.append(SkippedFile(path=path, reason=str(exc)))
+        except RecursionError:
+            skipped.append(SkippedFile(path=path, reason="not readable: nesting too deep"))
+        if progress is not None:
+            progress(done, total)
+
+    stacks = []
+    for stack in build_stacks(records):
+        role, reason, confidence = _infer(stack.acquisition, stack.description, bands)
+        stacks.append(replace(stack, role=role, role_reason=reason, confidence=confidence))
+
+    warnings: list[str] = []
+    study_uids = Counter(r.study.study_instance_uid for r in records)
+    if len(study_uids) > 1:
+        warnings.append(
+            f"{len(study_uids)} StudyInstanceUIDs in the folder; study details are from the most "
+            "common one"
+        )
+    study = StudyInfo()
+    if records:
+        main_uid = study_uids.most_common(1)[0][0]
+        study = next(r.study for r in records if r.study.study_instance_uid == main_uid)
+    return StudyIndex(
+        study_dir=study_dir,
+        study=study,
+        stacks=tuple(stacks),
+        skipped=tuple(skipped),
+        warnings=tuple(warnings),
+    )

@@ -1,0 +1,129 @@
+"""Pixels of one stack as a SimpleITK image in DICOM patient space (LPS).
+
+Pixel data are decoded by pydicom's pixel handlers, which use the pylibjpeg plugins for RLE,
+JPEG lossless, JPEG-LS and JPEG 2000 (see docs/ingestion.md). Only the stack asked for is read.
+"""
+
+from __future__ import annotations
+
+from collections import defaultdict
+from pathlib import Path
+
+import numpy as np
+import pydicom
+import SimpleITK as sitk
+from pydicom.dataset import Dataset
+
+from sigreport.errors import InputError
+from sigreport.ingest.header import MULTIFRAME_CLASSES, Scaling, classic_scaling
+from sigreport.model import Stack
+
+
+def _apply(stored: np.ndarray, scaling: Scaling) -> np.ndarray:
+    if scaling.lut is not None:
+        lut = np.asarray(scaling.lut, dtype=np.float64)
+        index = np.clip(stored.astype(np.int64) - scaling.lut_first, 0, len(lut) - 1)
+        return lut[index].astype(np.float32)
+    out = stored.astype(np.float32)
+    if scaling.slope != 1.0:
+        out *= np.float32(scaling.slope)
+    if scaling.intercept != 0.0:
+        out += np.float32(scaling.intercept)
+    return out
+
+
+def _read(path: Path) -> Dataset:
+    try:
+        return pydicom.dcmread(path)
+    except Exception as exc:  # the file changed or broke since it was indexed
+        raise InputError(f"{path.name}: cannot be read: {exc}") from None
+
+
+def _pixels(ds: Dataset, path: Path) -> np.ndarray:
+    try:
+        return np.asarray(ds.pixel_array)
+    except Exception as exc:  # no decoder, corrupt stream, wrong lengths
+        ts = getattr(getattr(ds, "file_meta", None), "TransferSyntaxUID", None)
+        name = ts.name if ts is not None else "unknown transfer syntax"
+        raise InputError(f"{path.name}: pixel data cannot be decoded ({name}): {exc}") from None
+
+
+def load_stack(stack: Stack) -> sitk.Image:
+    """Load a stack's pixels as a float32 SimpleITK image in patient space (LPS).
+
+    Values are rescaled: a Real World Value Mapping when present, else RescaleSlope/Intercept
+    (classic) or the Pixel Value Transformation functional group (Enhanced MR). Geometry is
+    exactly the stack's: origin = first slice's ImagePositionPatient, spacing (column, row,
+    slice spacing from positions), direction columns (row direction, column direction, normal),
+    so voxel (i, j, k) lies at origin + D @ (i sx, j sy, k sz) (DICOM PS3.3 C.7.6.2.1.1).
+    Slices missing from a regular stack (see ``Stack.warnings``) are NaN.
+
+    Raises
+    ------
+    InputError
+        Naming the file when pixel data cannot be read or decoded, or its size does not match.
+    """
+    columns, rows, n_slices = stack.size
+    volume = np.full((n_slices, rows, columns), np.nan, dtype=np.float32)
+    indices = _slice_indices(stack)
+
+    by_file: dict[Path, list[tuple[int, int | None]]] = defaultdict(list)
+    for k, ref in zip(indices, stack.instances, strict=True):
+        by_file[ref.path].append((k, ref.frame))
+    for path, targets in by_file.items():
+        ds = _read(path)
+        pixels = _pixels(ds, path)
+        if str(ds.get("SOPClassUID", "")) in MULTIFRAME_CLASSES or any(
+            f is not None for _, f in targets
+        ):
+            from sigreport.ingest.enhanced import FunctionalGroups, frame_scaling
+
+            groups = FunctionalGroups(ds)
+            frames = pixels if pixels.ndim == 3 else pixels[np.newaxis]
+            for k, frame in targets:
+                index = (frame or 1) - 1
+                if index >= frames.shape[0]:
+                    raise InputError(
+                        f"{path.name}: frame {index + 1} requested, file has {frames.shape[0]}"
+                    )
+                volume[k] = _apply(
+                    _check(frames[index], rows, columns, path), frame_scaling(groups, index, ds)
+                )
+        else:
+            scaling = classic_scaling(ds)
+            if pixels.ndim != 2:
+                raise InputError(
+                    f"{path.name}: expected one {rows}x{columns} frame, got shape {pixels.shape}"
+                )
+            for k, _ in targets:
+                volume[k] = _apply(_check(pixels, rows, columns, path), scaling)
+
+    image = sitk.GetImageFromArray(volume, isVector=False)
+    image.SetOrigin(stack.origin_mm)
+    image.SetSpacing(stack.spacing_mm)
+    image.SetDirection(stack.direction)
+    return image
+
+
+def _check(frame: np.ndarray, rows: int, columns: int, path: Path) -> np.ndarray:
+    if frame.shape != (rows, columns):
+        raise InputError(
+            f"{path.name}: frame is {frame.shape[0]}x{frame.shape[1]}, the stack expects "
+            f"{rows}x{columns}"
+        )
+    return frame
+
+
+def _slice_indices(stack: Stack) -> list[int]:
+    """Index of each instance along the stack: its order, or (when slices are missing) its
+    position on the regular grid of the stack's slice spacing."""
+    n = stack.size[2]
+    if n == len(stack.instances):
+        return list(range(n))
+    d = np.asarray(stack.direction, float).reshape(3, 3)[:, 2]
+    origin = np.asarray(stack.origin_mm, float)
+    out = []
+    for ref in stack.instances:
+        k = int(round(float(np.dot(np.asarray(ref.position_mm) - origin, d)) / stack.spacing_mm[2]))
+        out.append(min(max(k, 0), n - 1))
+    return out
