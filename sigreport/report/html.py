@@ -1,0 +1,63 @@
+"""report.html: one self-contained page (inline CSS, data: URI images, inline SVG, no script,
+no external reference), rendered from the lexicon's ``report.html.j2`` with autoescaping on."""
+
+from __future__ import annotations
+
+import base64
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+from typing import Any
+
+from markupsafe import Markup
+
+from sigreport.report.images import lesion_points, ratio_plot_svg
+from sigreport.report.tables import ordered_roles, series_by_role
+from sigreport.report.text import environment
+from sigreport.report.wording import Wording
+
+
+def data_uri(png: bytes) -> str:
+    """A ``data:image/png;base64,...`` URI (RFC 2397) of PNG bytes."""
+    return "data:image/png;base64," + base64.b64encode(png).decode("ascii")
+
+
+def render_html(
+    context: Mapping[str, Any],
+    findings: Mapping[str, Any],
+    images: Mapping[str, Sequence[Mapping[str, Any]]],
+    wording: Wording,
+    site: Path | str | None = None,
+) -> str:
+    """The page. ``images`` maps a lesion id to its key images in display order, each a dict
+    with ``png`` (bytes), ``role`` and ``file`` (the PNG's name under images/)."""
+    series = series_by_role(findings)
+    by_id = {str(lesion.get("id")): lesion for lesion in findings.get("lesions", [])}
+    lesions = []
+    for lesion in context["lesions"]:
+        source = by_id.get(lesion["id"], {})
+        signal = source.get("signal") or {}
+        strip = []
+        for item in images.get(lesion["id"], ()):
+            entry = series.get(item["role"], {})
+            number = entry.get("series_number")
+            strip.append(
+                {
+                    "src": data_uri(item["png"]),
+                    "role": item["role"],
+                    "role_name": wording.role_name(item["role"]),
+                    "series": "" if number is None else str(number),
+                    "description": str(entry.get("description") or ""),
+                    "file": item["file"],
+                }
+            )
+        # The SVG is built from numbers and escaped labels only (images.ratio_plot_svg).
+        plot = Markup(
+            ratio_plot_svg(
+                lesion_points(signal, ordered_roles(signal)),
+                iso_band=wording.iso_band,
+                title=f"{lesion['id']}: ratio to {lesion['reference_tissue']}",
+            )
+        )
+        lesions.append({**lesion, "images": strip, "plot": plot})
+    env = environment(site, autoescape=True)
+    return env.get_template("report.html.j2").render(**{**context, "lesions": lesions})

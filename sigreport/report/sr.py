@@ -1,0 +1,381 @@
+"""sr.dcm: the findings as a DICOM Comprehensive 3D SR, measurement report template TID 1500.
+
+One measurement group (TID 1501, Measurements and Qualitative Evaluations) per lesion, tracked
+by the lesion id and site; numbers with UCUM units, grades and flags as coded qualitative
+evaluations, each per-series value referencing the source image it was measured on. Standard
+codes come from DICOM PS3.16 through ``pydicom.sr.codedict.codes``; concepts PS3.16 lacks are
+drawn from the private coding scheme ``99SIGRPT``, declared in the Coding Scheme Identification
+Sequence (PS3.3 C.12.1.1.4). The SR is a draft: Completion Flag PARTIAL, Verification Flag
+UNVERIFIED (PS3.3 C.17.2), and it carries the report's cautions as comments.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+from typing import Any
+
+import highdicom as hd
+from pydicom import Dataset, dcmread
+from pydicom.sr.codedict import codes
+from pydicom.sr.coding import Code
+
+from sigreport.model import InstanceRef, KeySlice, Stack
+from sigreport.report.tables import ordered_roles
+
+PRIVATE_SCHEME = "99SIGRPT"
+PRIVATE_SCHEME_NAME = "sigreport private concepts"
+SR_SERIES_NUMBER = 9900
+SR_SERIES_DESCRIPTION = "sigreport draft measurement report"
+
+# UCUM units (PS3.16 CID 7181 draws on UCUM): ratio and percent are annotations / symbols.
+UNIT_ML = Code("ml", "UCUM", "milliliter")
+UNIT_MM = Code("mm", "UCUM", "millimeter")
+UNIT_PERCENT = Code("%", "UCUM", "percent")
+UNIT_RATIO = Code("{ratio}", "UCUM", "ratio")
+UNIT_NONE = Code("1", "UCUM", "no units")
+
+# Signal grades: PS3.16 CID 6343 (RadLex codes).
+GRADE_CODES: dict[str, Code] = {
+    "hyperintense": codes.cid6343.Hyperintense,
+    "isointense": codes.cid6343.Isointense,
+    "hypointense": codes.cid6343.Hypointense,
+}
+# Statistics: PS3.16 CID 7464 (mean, median, SD); the 5th / 95th percentiles are SNOMED CT
+# qualifier values (PS3.16 lists them, e.g. in CID 7464's extensions).
+DERIVATIONS: dict[str, Code] = {
+    "mean": codes.cid7464.Mean,
+    "median": codes.cid7464.Median,
+    "sd": codes.cid7464.StandardDeviation,
+    "p05": codes.SCT.FifthPercentile,
+    "p95": codes.SCT.NinetyFifthPercentile,
+}
+
+
+def private(value: str, meaning: str) -> hd.sr.CodedConcept:
+    """A concept of the private scheme ``99SIGRPT`` (meaning cut to the LO limit of 64)."""
+    return hd.sr.CodedConcept(value, PRIVATE_SCHEME, meaning[:64])
+
+
+# Concepts with no PS3.16 equivalent.
+ENHANCEMENT_PERCENT = private("ENH-PCT", "Reference-normalized enhancement")
+ENHANCEMENT_RAW_PERCENT = private("ENH-RAW-PCT", "Unnormalized enhancement")
+CONTRAST_ENHANCEMENT = private("ENHANCEMENT", "Contrast enhancement")
+ENHANCEMENT_PATTERN = codes.RADLEX.EnhancementPattern  # RadLex RID6058
+FLOW_VOID = private("FLOW-VOID", "Flow void")
+BEHAVIOUR = private("BEHAVIOUR", "Signal behaviour")
+PATTERN_CODES = {
+    "none": private("PATTERN-NONE", "No enhancement pattern"),
+    "solid": private("PATTERN-SOLID", "Solid enhancement"),
+    "rim": private("PATTERN-RIM", "Rim enhancement"),
+    "heterogeneous": private("PATTERN-HETERO", "Heterogeneous enhancement"),
+}
+
+
+def role_method(role: str) -> hd.sr.CodedConcept:
+    """Measurement Method naming the series a value was measured on (private concept)."""
+    return private(f"ROLE-{role}", f"Measured on the {role} series")
+
+
+def grade_name(role: str) -> hd.sr.CodedConcept:
+    return private(f"GRADE-{role}", f"Signal relative to reference tissue on {role}")
+
+
+def drop_name(kind: str) -> hd.sr.CodedConcept:
+    return private(f"DROP-{kind.upper()}", f"{kind.capitalize()} suppression signal drop")
+
+
+def suppressed_name(kind: str) -> hd.sr.CodedConcept:
+    return private(f"SUPP-{kind.upper()}", f"{kind.capitalize()} suppression")
+
+
+def reliable_name(kind: str) -> hd.sr.CodedConcept:
+    return private(f"RELIABLE-{kind.upper()}", f"{kind.capitalize()} suppression flag reliable")
+
+
+def _yes_no(value: bool) -> Code:
+    return codes.SCT.Yes if value else codes.SCT.No
+
+
+def _instance_for(key: KeySlice, stack: Stack) -> InstanceRef | None:
+    for ref in stack.instances:
+        if key.sop_instance_uid is not None and ref.sop_instance_uid == key.sop_instance_uid:
+            return ref
+    if key.sop_instance_uid is None and 0 <= key.slice_index < len(stack.instances):
+        return stack.instances[key.slice_index]
+    return None
+
+
+class _Sources:
+    """The source instances' headers (read once, without pixels) and their references."""
+
+    def __init__(self) -> None:
+        self.datasets: dict[str, Dataset] = {}
+
+    def add(self, ref: InstanceRef) -> Dataset:
+        if ref.sop_instance_uid not in self.datasets:
+            try:
+                ds = dcmread(ref.path, stop_before_pixels=True)
+            except Exception as exc:  # noqa: BLE001 - re-raised with the file named
+                raise ValueError(f"cannot read source image header {ref.path}: {exc}") from exc
+            self.datasets[ref.sop_instance_uid] = ds
+        return self.datasets[ref.sop_instance_uid]
+
+    @staticmethod
+    def frames(ref: InstanceRef) -> list[int] | None:
+        return [ref.frame] if ref.frame is not None else None
+
+
+def build_sr(
+    findings: Mapping[str, Any],
+    key_slices: Sequence[KeySlice],
+    stacks: Mapping[str, Stack],
+    *,
+    series_number: int = SR_SERIES_NUMBER,
+    manufacturer: str = "sigreport",
+) -> hd.sr.Comprehensive3DSR:
+    """The draft measurement report of ``findings`` as a Comprehensive 3D SR.
+
+    Parameters
+    ----------
+    findings:
+        The findings.json object (schema sigreport-findings/1).
+    key_slices:
+        The lesions' central slices; their SOP instances are the measurements' source images.
+    stacks:
+        Role -> the stack measured for that role (its instance paths give the source headers).
+    series_number, manufacturer:
+        Of the SR series (General Series / General Equipment modules).
+
+    Raises
+    ------
+    ValueError
+        When there is no source image to take the patient and study from, or a source header
+        cannot be read.
+    """
+    sources = _Sources()
+    key_refs: dict[tuple[str, str], InstanceRef] = {}
+    for key in key_slices:
+        stack = stacks.get(str(key.role))
+        ref = _instance_for(key, stack) if stack is not None else None
+        if ref is not None:
+            sources.add(ref)
+            key_refs[(key.roi_id, str(key.role))] = ref
+    if not sources.datasets:
+        for stack in stacks.values():
+            if stack.instances:
+                sources.add(stack.instances[len(stack.instances) // 2])
+                break
+    if not sources.datasets:
+        raise ValueError('Argument "stacks" holds no source instance to build the SR from.')
+
+    groups = [_lesion_group(lesion, key_refs, sources) for lesion in findings.get("lesions", [])]
+    device = hd.sr.ObserverContext(
+        observer_type=codes.DCM.Device,
+        observer_identifying_attributes=hd.sr.DeviceObserverIdentifyingAttributes(
+            uid=hd.UID(),
+            name=manufacturer,
+            manufacturer_name=manufacturer,
+            model_name=str((findings.get("tool") or {}).get("version", "")) or None,
+        ),
+    )
+    report = hd.sr.MeasurementReport(
+        observation_context=hd.sr.ObservationContext(observer_device_context=device),
+        procedure_reported=codes.cid100.MultiparametricMRI,
+        imaging_measurements=groups,
+        referenced_images=list(sources.datasets.values()),
+    )
+    # The cautions (and the warnings of the run) travel with the numbers: TEXT comments on the
+    # report's root container (TID 1500 is extensible).
+    root = report[0]
+    for caution in findings.get("cautions", []):
+        root.ContentSequence.append(
+            hd.sr.TextContentItem(
+                name=codes.DCM.Comment, value=str(caution), relationship_type="CONTAINS"
+            )
+        )
+    for note in findings.get("qc", []):
+        if note.get("level") in ("warning", "error"):
+            root.ContentSequence.append(
+                hd.sr.TextContentItem(
+                    name=codes.DCM.Comment,
+                    value=f"QC {note.get('level')} ({note.get('code')}): {note.get('message')}",
+                    relationship_type="CONTAINS",
+                )
+            )
+    evidence = list(sources.datasets.values())
+    sr = hd.sr.Comprehensive3DSR(
+        evidence=evidence,
+        content=report,
+        series_instance_uid=hd.UID(),
+        series_number=series_number,
+        sop_instance_uid=hd.UID(),
+        instance_number=1,
+        manufacturer=manufacturer,
+        is_complete=False,
+        is_final=False,
+        is_verified=False,
+    )
+    sr.SeriesDescription = SR_SERIES_DESCRIPTION
+    scheme = Dataset()
+    scheme.CodingSchemeDesignator = PRIVATE_SCHEME
+    scheme.CodingSchemeName = PRIVATE_SCHEME_NAME
+    scheme.CodingSchemeResponsibleOrganization = "sigreport project"
+    sr.CodingSchemeIdentificationSequence = [scheme]
+    return sr
+
+
+def _lesion_group(
+    lesion: Mapping[str, Any],
+    key_refs: Mapping[tuple[str, str], InstanceRef],
+    sources: _Sources,
+) -> hd.sr.MeasurementsAndQualitativeEvaluations:
+    lesion_id = str(lesion.get("id"))
+    site = str(lesion.get("site") or "")
+    measurements: list[hd.sr.Measurement] = []
+    evaluations: list[hd.sr.QualitativeEvaluation] = []
+    group_images: list[hd.sr.SourceImageForMeasurementGroup] = []
+
+    if lesion.get("volume_ml") is not None:
+        measurements.append(
+            hd.sr.Measurement(name=codes.SCT.Volume, value=float(lesion["volume_ml"]), unit=UNIT_ML)
+        )
+    if lesion.get("max_diameter_mm") is not None:
+        measurements.append(
+            hd.sr.Measurement(
+                name=codes.SCT.Diameter,
+                value=float(lesion["max_diameter_mm"]),
+                unit=UNIT_MM,
+                derivation=codes.cid7464.Maximum,
+            )
+        )
+    signal: Mapping[str, Any] = lesion.get("signal") or {}
+    for role in ordered_roles(signal):
+        stats = signal[role]
+        if stats is None:
+            continue
+        ref = key_refs.get((lesion_id, role))
+        images = None
+        if ref is not None:
+            ds = sources.datasets[ref.sop_instance_uid]
+            images = [
+                hd.sr.SourceImageForMeasurement(
+                    ds.SOPClassUID, ds.SOPInstanceUID, referenced_frame_numbers=_Sources.frames(ref)
+                )
+            ]
+            group_images.append(
+                hd.sr.SourceImageForMeasurementGroup(
+                    ds.SOPClassUID, ds.SOPInstanceUID, referenced_frame_numbers=_Sources.frames(ref)
+                )
+            )
+        method = role_method(role)
+        for stat, derivation in DERIVATIONS.items():
+            if stats.get(stat) is None:
+                continue
+            measurements.append(
+                hd.sr.Measurement(
+                    name=codes.DCM.MRSignalIntensity,
+                    value=float(stats[stat]),
+                    unit=UNIT_NONE,
+                    derivation=derivation,
+                    method=method,
+                    referenced_images=images,
+                )
+            )
+        if stats.get("ratio") is not None:
+            measurements.append(
+                hd.sr.Measurement(
+                    name=codes.SCT.Ratio,
+                    value=float(stats["ratio"]),
+                    unit=UNIT_RATIO,
+                    derivation=codes.cid7464.Median,  # ratio of the medians (interface.md)
+                    method=method,
+                    referenced_images=images,
+                )
+            )
+        grade = GRADE_CODES.get(str(stats.get("grade")))
+        if grade is not None:
+            evaluations.append(hd.sr.QualitativeEvaluation(grade_name(role), grade))
+
+    enhancement = lesion.get("enhancement") or {}
+    if enhancement.get("percent") is not None:
+        measurements.append(
+            hd.sr.Measurement(
+                name=ENHANCEMENT_PERCENT,
+                value=float(enhancement["percent"]),
+                unit=UNIT_PERCENT,
+                method=private(
+                    "ENH-PAIR", f"{enhancement.get('post')} against {enhancement.get('pre')}"
+                ),
+            )
+        )
+        if enhancement.get("raw_percent") is not None:
+            measurements.append(
+                hd.sr.Measurement(
+                    name=ENHANCEMENT_RAW_PERCENT,
+                    value=float(enhancement["raw_percent"]),
+                    unit=UNIT_PERCENT,
+                )
+            )
+    if enhancement.get("enhancing") is not None:
+        # PS3.16 CID 6345: a lesion ROI that enhances shows focal contrast enhancement.
+        value = (
+            codes.cid6345.FocalContrastEnhancement if enhancement["enhancing"] else codes.SCT.Absent
+        )
+        evaluations.append(hd.sr.QualitativeEvaluation(CONTRAST_ENHANCEMENT, value))
+    if enhancement.get("pattern") in PATTERN_CODES:
+        evaluations.append(
+            hd.sr.QualitativeEvaluation(ENHANCEMENT_PATTERN, PATTERN_CODES[enhancement["pattern"]])
+        )
+
+    suppression: Mapping[str, Any] = lesion.get("suppression") or {}
+    for kind in ("fluid", "fat"):
+        flag = suppression.get(kind)
+        if not flag:
+            continue
+        if flag.get("drop_percent") is not None:
+            measurements.append(
+                hd.sr.Measurement(
+                    name=drop_name(kind),
+                    value=float(flag["drop_percent"]),
+                    unit=UNIT_PERCENT,
+                    method=private(
+                        f"PAIR-{kind.upper()}", f"{flag.get('to')} against {flag.get('from')}"
+                    ),
+                )
+            )
+        if flag.get("suppressed") is not None:
+            evaluations.append(
+                hd.sr.QualitativeEvaluation(
+                    suppressed_name(kind), _yes_no(bool(flag["suppressed"]))
+                )
+            )
+        if flag.get("reliable") is not None:
+            evaluations.append(
+                hd.sr.QualitativeEvaluation(reliable_name(kind), _yes_no(bool(flag["reliable"])))
+            )
+    if lesion.get("flow_void") is not None:
+        value = codes.SCT.Present if lesion["flow_void"] else codes.SCT.Absent
+        evaluations.append(hd.sr.QualitativeEvaluation(FLOW_VOID, value))
+    for key in lesion.get("behaviour") or []:
+        evaluations.append(
+            hd.sr.QualitativeEvaluation(BEHAVIOUR, private(f"B-{key}", str(key).replace("-", " ")))
+        )
+
+    unique_images = list(
+        {(g.ReferencedSOPSequence[0].ReferencedSOPInstanceUID): g for g in group_images}.values()
+    )
+    return hd.sr.MeasurementsAndQualitativeEvaluations(
+        tracking_identifier=hd.sr.TrackingIdentifier(
+            uid=hd.UID(), identifier=f"{lesion_id} ({site})" if site else lesion_id
+        ),
+        finding_type=codes.SCT.Lesion,
+        measurements=measurements or None,
+        qualitative_evaluations=evaluations or None,
+        source_images=unique_images or None,
+    )
+
+
+def write_sr(path: Path, sr: hd.sr.Comprehensive3DSR) -> None:
+    """Write the SR as a DICOM file (PS3.10, with file meta)."""
+    sr.save_as(path, enforce_file_format=True)

@@ -1,0 +1,116 @@
+"""The signal-behaviour table: one row per lesion and series role (``table.csv`` and the table
+of report.md / report.txt / report.html)."""
+
+from __future__ import annotations
+
+import csv
+import io
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+from sigreport.report.wording import role_sort_key
+
+COLUMNS: tuple[str, ...] = (
+    "lesion", "site", "role", "series_number", "series_description", "n_voxels", "mean",
+    "median", "sd", "p05", "p95", "ratio", "grade", "enhancement_percent",
+    "fluid_drop_percent", "fat_drop_percent", "notes",
+)  # fmt: skip
+
+
+def series_by_role(findings: Mapping[str, Any]) -> dict[str, Mapping[str, Any]]:
+    """The findings' series entry for each role: the measured one when several share a role."""
+    out: dict[str, Mapping[str, Any]] = {}
+    for entry in findings.get("series", []):
+        role = entry.get("role")
+        if role is None:
+            continue
+        if role not in out or (entry.get("measured") and not out[role].get("measured")):
+            out[role] = entry
+    return out
+
+
+def ordered_roles(signal: Mapping[str, Any]) -> list[str]:
+    """The roles of a lesion's ``signal`` in reading order."""
+    return sorted(signal, key=role_sort_key)
+
+
+def table_rows(findings: Mapping[str, Any]) -> list[dict[str, Any]]:
+    """One row per lesion and role of its ``signal`` (null signal included, noted).
+
+    The lesion's enhancement percent sits on its post-contrast row (the pre-contrast row notes
+    that it is the baseline); each suppression drop sits on the row of the suppressed series.
+    Numbers are left as numbers (``None`` when absent); the CSV writes them as they are.
+    """
+    series = series_by_role(findings)
+    rows: list[dict[str, Any]] = []
+    for lesion in findings.get("lesions", []):
+        signal: Mapping[str, Any] = lesion.get("signal") or {}
+        enhancement = lesion.get("enhancement") or {}
+        suppression = lesion.get("suppression") or {}
+        for role in ordered_roles(signal):
+            stats = signal[role]
+            entry = series.get(role, {})
+            notes: list[str] = []
+            row: dict[str, Any] = dict.fromkeys(COLUMNS)
+            row.update(
+                lesion=lesion.get("id"),
+                site=lesion.get("site"),
+                role=role,
+                series_number=entry.get("series_number"),
+                series_description=entry.get("description"),
+            )
+            if stats is None:
+                notes.append("not measured (see qc)")
+            else:
+                for key in ("n_voxels", "mean", "median", "sd", "p05", "p95", "ratio", "grade"):
+                    row[key] = stats.get(key)
+            if enhancement.get("post") == role:
+                row["enhancement_percent"] = enhancement.get("percent")
+                if enhancement.get("percent") is not None:
+                    pattern = enhancement.get("pattern")
+                    if enhancement.get("enhancing"):
+                        notes.append(
+                            f"enhancing ({pattern})"
+                            if pattern not in (None, "none")
+                            else "enhancing"
+                        )
+                    else:
+                        notes.append("not enhancing")
+                if enhancement.get("raw_percent") is not None:
+                    notes.append(f"unnormalized change {enhancement['raw_percent']:+.1f} %")
+            if enhancement.get("pre") == role and enhancement.get("percent") is not None:
+                notes.append(f"pre-contrast baseline for {enhancement.get('post')}")
+            for kind in ("fluid", "fat"):
+                flag = suppression.get(kind)
+                if not flag or flag.get("to") != role:
+                    continue
+                row[f"{kind}_drop_percent"] = flag.get("drop_percent")
+                if flag.get("suppressed") is not None:
+                    said = "suppressed" if flag["suppressed"] else "not suppressed"
+                    notes.append(f"{kind} {said} against {flag.get('from')}")
+                if flag.get("reliable") is False:
+                    notes.append(f"{kind} flag unreliable")
+            row["notes"] = "; ".join(notes)
+            rows.append(row)
+    return rows
+
+
+def rows_to_csv(rows: Sequence[Mapping[str, Any]]) -> str:
+    """The rows as CSV text (RFC 4180 quoting, ``\\r\\n`` line ends as the csv module writes
+    them), header first, empty cells for ``None``."""
+    buffer = io.StringIO()
+    writer = csv.DictWriter(buffer, fieldnames=list(COLUMNS), extrasaction="raise")
+    writer.writeheader()
+    for row in rows:
+        writer.writerow({k: _cell(row.get(k)) for k in COLUMNS})
+    return buffer.getvalue()
+
+
+def _cell(value: Any) -> Any:
+    """A CSV cell: empty for ``None``; free text that a spreadsheet would run as a formula
+    (leading ``= + - @``, OWASP "CSV injection") is prefixed with an apostrophe."""
+    if value is None:
+        return ""
+    if isinstance(value, str) and value[:1] in ("=", "+", "-", "@", "\t", "\r"):
+        return "'" + value
+    return value

@@ -1,0 +1,352 @@
+"""The draft text: per-lesion findings paragraphs in the lexicon's wording, and the jinja2
+rendering of report.md and report.txt.
+
+Templates live in the lexicon (``lexicon/templates``; a site's folder first, through a
+``ChoiceLoader``), are rendered with ``StrictUndefined``, and receive only plain strings and
+lists built here, so a site can rearrange or reword the report without code.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+import textwrap
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+from typing import Any
+
+import jinja2
+
+from sigreport import lexicon
+from sigreport.report.tables import ordered_roles, series_by_role, table_rows
+from sigreport.report.wording import Phrases, Wording, fill, role_sort_key
+
+TEXT_WIDTH = 100
+
+
+def environment(site: Path | str | None = None, *, autoescape: bool = False) -> jinja2.Environment:
+    """A jinja2 environment over the lexicon's template folders (site first), strict about
+    undefined names; ``autoescape`` for HTML."""
+    loader = jinja2.ChoiceLoader(
+        [jinja2.FileSystemLoader(str(folder)) for folder in lexicon.template_dirs(site)]
+    )
+    env = jinja2.Environment(
+        loader=loader,
+        undefined=jinja2.StrictUndefined,
+        autoescape=autoescape,
+        keep_trailing_newline=True,
+        trim_blocks=True,
+        lstrip_blocks=True,
+    )
+    env.filters["md"] = md_escape
+    env.filters["wrap"] = wrap
+    return env
+
+
+_MD_SPECIAL = re.compile(r"([\\`*_\[\]|#])")
+
+
+def md_escape(text: Any) -> str:
+    """Text safe to place in Markdown: HTML-special characters as entities (a Markdown viewer
+    renders raw HTML), Markdown punctuation backslash-escaped, newlines as spaces."""
+    value = "" if text is None else str(text)
+    value = value.replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
+    value = _MD_SPECIAL.sub(r"\\\1", value)
+    return " ".join(value.splitlines())
+
+
+def wrap(text: Any, width: int = TEXT_WIDTH, indent: str = "", first: str | None = None) -> str:
+    """Wrap plain text at ``width`` columns (``textwrap``; long words are not broken)."""
+    return textwrap.fill(
+        " ".join(str(text).split()),
+        width=width,
+        initial_indent=indent if first is None else first,
+        subsequent_indent=indent,
+        break_long_words=False,
+        break_on_hyphens=False,
+    )
+
+
+def _capital(sentence: str) -> str:
+    return sentence[:1].upper() + sentence[1:] if sentence else sentence
+
+
+def _num(value: Any, digits: int) -> str:
+    if value is None or (isinstance(value, float) and not math.isfinite(value)):
+        return "n/a"
+    return f"{float(value):.{digits}f}"
+
+
+def _signed(value: Any) -> str:
+    if value is None:
+        return "n/a"
+    return f"{float(value):+.0f}"
+
+
+def lesion_sentences(
+    lesion: Mapping[str, Any],
+    findings: Mapping[str, Any],
+    wording: Wording,
+    phrases: Phrases,
+) -> list[str]:
+    """The draft findings sentences for one lesion, in reading order: size, signal on each
+    series relative to the reference tissue, suppression, enhancement, flow void."""
+    s = wording.sentences
+    out: list[str] = []
+    volume, diameter = lesion.get("volume_ml"), lesion.get("max_diameter_mm")
+    if volume is not None and diameter is not None:
+        out.append(
+            fill(s["size"], "size", volume_ml=_num(volume, 2), max_diameter_mm=_num(diameter, 1))
+        )
+    elif volume is not None:
+        out.append(fill(s["size_volume_only"], "size_volume_only", volume_ml=_num(volume, 2)))
+    else:
+        out.append(s["size_unknown"])
+
+    tissue = reference_tissue(lesion, findings)
+    signal: Mapping[str, Any] = lesion.get("signal") or {}
+    items: list[str] = []
+    unmeasured: list[str] = []
+    for role in ordered_roles(signal):
+        stats = signal[role]
+        name = wording.role_name(role)
+        if stats is None or stats.get("ratio") is None:
+            unmeasured.append(name)
+            continue
+        grade = phrases.grade(stats.get("ratio"), stats.get("grade"))
+        key = "signal_first" if not items else "signal_next"
+        items.append(fill(s[key], key, grade=grade, tissue=tissue, role=name))
+    if items:
+        out.append(fill(s["signal"], "signal", items=wording.join(items)))
+    if unmeasured:
+        out.append(
+            fill(s["signal_unmeasured"], "signal_unmeasured", roles=wording.join(unmeasured))
+        )
+
+    suppression: Mapping[str, Any] = lesion.get("suppression") or {}
+    for kind in ("fluid", "fat"):
+        flag = suppression.get(kind)
+        if not flag:
+            continue
+        values = {
+            "from": wording.role_name(str(flag.get("from"))),
+            "to": wording.role_name(str(flag.get("to"))),
+            "drop": _num(flag.get("drop_percent"), 0),
+        }
+        if flag.get("drop_percent") is None or flag.get("suppressed") is None:
+            out.append(fill(s["suppression_unknown"], "suppression_unknown", **values))
+        else:
+            key = f"{kind}_suppressed" if flag["suppressed"] else f"{kind}_not_suppressed"
+            out.append(fill(s[key], key, **values))
+        if flag.get("reliable") is False:
+            out.append(s["unreliable"])
+
+    enhancement = lesion.get("enhancement") or {}
+    if enhancement and (enhancement.get("pre") or enhancement.get("post")):
+        percent = enhancement.get("percent")
+        values = {
+            "pre": wording.role_name(str(enhancement.get("pre"))),
+            "post": wording.role_name(str(enhancement.get("post"))),
+            "percent": _signed(percent),
+        }
+        if percent is None:
+            out.append(fill(s["enhancement_unknown"], "enhancement_unknown", **values))
+        elif enhancement.get("enhancing"):
+            pattern = enhancement.get("pattern")
+            if pattern in (None, "none"):
+                out.append(fill(s["enhancing_no_pattern"], "enhancing_no_pattern", **values))
+            else:
+                name = wording.patterns.get(str(pattern), str(pattern))
+                out.append(
+                    fill(
+                        s["enhancing"], "enhancing", Pattern=_capital(name), pattern=name, **values
+                    )
+                )
+        else:
+            out.append(fill(s["not_enhancing"], "not_enhancing", **values))
+        if percent is not None and enhancement.get("raw_percent") is not None:
+            out.append(
+                fill(s["raw_percent"], "raw_percent", raw=_signed(enhancement["raw_percent"]))
+            )
+
+    flow_void = lesion.get("flow_void")
+    if flow_void is True:
+        out.append(s["flow_void"])
+    elif flow_void is False:
+        out.append(s["no_flow_void"])
+    return [_capital(sentence) for sentence in out]
+
+
+def behaviour_sentences(lesion: Mapping[str, Any], wording: Wording, phrases: Phrases) -> list[str]:
+    """One "<phrase>: consider <a, b and c>." line per behaviour key of the lesion."""
+    out = []
+    for key in lesion.get("behaviour") or []:
+        phrase, considerations = phrases.behaviour(str(key))
+        if considerations:
+            joined = wording.sentences["considerations_separator"].join(considerations)
+            line = fill(
+                wording.sentences["behaviour"], "behaviour", phrase=phrase, considerations=joined
+            )
+        else:
+            line = fill(
+                wording.sentences["behaviour_no_considerations"],
+                "behaviour_no_considerations",
+                phrase=phrase,
+            )
+        out.append(_capital(line))
+    return out
+
+
+def reference_tissue(lesion: Mapping[str, Any], findings: Mapping[str, Any]) -> str:
+    """The tissue of the lesion's reference ROI ("white matter"), else the ROI id."""
+    ref = lesion.get("reference")
+    for roi in findings.get("rois", []):
+        if roi.get("id") == ref:
+            return str(roi.get("tissue") or ref)
+    return str(ref) if ref else "the reference tissue"
+
+
+def display_rows(findings: Mapping[str, Any]) -> list[dict[str, str]]:
+    """The table rows formatted for reading (fixed decimals, signed percentages)."""
+    out = []
+    for row in table_rows(findings):
+        drops = [
+            f"{kind} {_num(row[f'{kind}_drop_percent'], 0)}"
+            for kind in ("fluid", "fat")
+            if row[f"{kind}_drop_percent"] is not None
+        ]
+        out.append(
+            {
+                "lesion": str(row["lesion"]),
+                "site": str(row["site"] or ""),
+                "role": str(row["role"]),
+                "series": "" if row["series_number"] is None else str(row["series_number"]),
+                "n_voxels": "" if row["n_voxels"] is None else str(row["n_voxels"]),
+                "median": _num(row["median"], 1) if row["median"] is not None else "",
+                "ratio": _num(row["ratio"], 2) if row["ratio"] is not None else "",
+                "grade": str(row["grade"] or ""),
+                "enhancement": _signed(row["enhancement_percent"])
+                if row["enhancement_percent"] is not None
+                else "",
+                "drop": ", ".join(drops),
+                "notes": str(row["notes"] or ""),
+            }
+        )
+    return out
+
+
+def text_table(
+    headers: Sequence[str], rows: Sequence[Sequence[str]], *, width: int = TEXT_WIDTH
+) -> str:
+    """A fixed-width plain-text table; the last column wraps so lines stay within ``width``."""
+    cols = len(headers)
+    widths = [max([len(headers[i])] + [len(r[i]) for r in rows]) for i in range(cols - 1)]
+    used = sum(widths) + 2 * (cols - 1)
+    last = max(16, width - used)
+    lines = []
+
+    def emit(cells: Sequence[str]) -> None:
+        wrapped = textwrap.wrap(cells[-1], last, break_long_words=True) or [""]
+        for j, piece in enumerate(wrapped):
+            lead = cells[:-1] if j == 0 else [""] * (cols - 1)
+            lines.append("  ".join(c.ljust(widths[i]) for i, c in enumerate(lead)) + "  " + piece)
+
+    emit(list(headers))
+    lines.append("  ".join("-" * w for w in widths) + "  " + "-" * min(last, 20))
+    for row in rows:
+        emit(list(row))
+    return "\n".join(line.rstrip() for line in lines)
+
+
+def report_context(
+    findings: Mapping[str, Any], wording: Wording, phrases: Phrases
+) -> dict[str, Any]:
+    """Everything the templates use, as plain strings, lists and dicts."""
+    rows = display_rows(findings)
+    lesions = []
+    for lesion in findings.get("lesions", []):
+        sentences = lesion_sentences(lesion, findings, wording, phrases)
+        lesion_id = str(lesion.get("id"))
+        lesions.append(
+            {
+                "id": lesion_id,
+                "site": str(lesion.get("site") or ""),
+                "heading": fill(
+                    wording.sentences["heading"],
+                    "heading",
+                    id=lesion_id,
+                    site=str(lesion.get("site") or ""),
+                ),
+                "sentences": sentences,
+                "paragraph": " ".join(sentences),
+                "behaviours": behaviour_sentences(lesion, wording, phrases),
+                "reference_tissue": reference_tissue(lesion, findings),
+                "rows": [r for r in rows if r["lesion"] == lesion_id],
+            }
+        )
+    qc = []
+    for note in findings.get("qc", []):
+        level = str(note.get("level"))
+        qc.append(
+            {
+                "level": level,
+                "label": wording.qc.get(level, level),
+                "code": str(note.get("code")),
+                "message": str(note.get("message")),
+                "prominent": level in ("warning", "error"),
+            }
+        )
+    series = []
+    by_role = series_by_role(findings)
+    for entry in sorted(
+        findings.get("series", []),
+        key=lambda e: (role_sort_key(str(e.get("role"))), e.get("series_number") or 0),
+    ):
+        alignment = entry.get("alignment") or {}
+        series.append(
+            {
+                "role": str(entry.get("role")),
+                "role_name": wording.role_name(str(entry.get("role"))),
+                "series_number": ""
+                if entry.get("series_number") is None
+                else str(entry["series_number"]),
+                "description": str(entry.get("description") or ""),
+                "reason": str(entry.get("role_reason") or ""),
+                "measured": "yes"
+                if entry.get("measured", by_role.get(str(entry.get("role"))) is entry)
+                else "no",
+                "alignment": str(alignment.get("method", "")),
+            }
+        )
+    study = findings.get("study") or {}
+    tool = findings.get("tool") or {}
+    text_rows = [
+        [r["lesion"], r["role"], r["series"], r["median"], r["ratio"], r["grade"],
+         r["enhancement"], r["drop"], r["notes"]]
+        for r in rows
+    ]  # fmt: skip
+    return {
+        "titles": wording.titles,
+        "study": {k: "" if v is None else str(v) for k, v in study.items()},
+        "tool": f"{tool.get('name', 'sigreport')} {tool.get('version', '')}".strip(),
+        "generated": str(findings.get("generated") or ""),
+        "cautions": [str(c) for c in findings.get("cautions", [])],
+        "lesions": lesions,
+        "rows": rows,
+        "text_table": text_table(
+            ["Lesion", "Role", "Series", "Median", "Ratio", "Grade", "Enh %", "Drop %", "Notes"],
+            text_rows,
+        ),
+        "qc": qc,
+        "qc_prominent": [n for n in qc if n["prominent"]],
+        "qc_none": wording.qc["none"],
+        "series": series,
+    }
+
+
+def render_text(context: Mapping[str, Any], site: Path | str | None = None) -> tuple[str, str]:
+    """(report.md, report.txt) rendered from the lexicon templates."""
+    env = environment(site)
+    markdown = env.get_template("report.md.j2").render(**context)
+    plain = env.get_template("report.txt.j2").render(**context)
+    return markdown, plain
