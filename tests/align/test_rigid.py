@@ -1,0 +1,187 @@
+"""Rigid alignment recovers known motions (synthetic volumes built here with numpy).
+
+Oracle: the motion is applied with SimpleITK's own ``Resample`` and a known ``Euler3DTransform``;
+``Resample(src, ref, A)`` gives ``out(y) = src(A(y))``, so the registered transform mapping anchor
+points to moving points must equal ``A^-1``.
+"""
+
+from __future__ import annotations
+
+import math
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pytest
+import SimpleITK as sitk
+
+from sigreport.align import identity_alignment, load_settings, register_rigid
+from sigreport.errors import InputError
+from sigreport.lexicon import bundled_dir
+
+BOX = (np.array([-20.0, -20.0, -20.0]), np.array([20.0, 20.0, 20.0]))
+TOL_MM = 0.5
+TOL_DEG = 0.5
+
+
+def phantom(n: int = 64, spacing: float = 2.0) -> tuple[sitk.Image, sitk.Image]:
+    """A smooth, structured, asymmetric head-like object and its inverted-contrast twin."""
+    ax = (np.arange(n) - (n - 1) / 2) * spacing
+    z, y, x = np.meshgrid(ax, ax, ax, indexing="ij")
+    head = 1.0 / (1.0 + np.exp(((x / 50) ** 2 + (y / 58) ** 2 + (z / 45) ** 2 - 1) * 20))
+    rng = np.random.default_rng(7)
+    tissue = np.zeros_like(x)
+    for _ in range(14):
+        c = rng.uniform(-35, 35, 3)
+        s = rng.uniform(4, 12)
+        tissue += rng.uniform(0.4, 1.0) * np.exp(
+            -((x - c[0]) ** 2 + (y - c[1]) ** 2 + (z - c[2]) ** 2) / (2 * s * s)
+        )
+    tissue /= tissue.max()
+    t1 = sitk.GetImageFromArray((head * (0.3 + tissue)).astype(np.float32))
+    t1.SetSpacing((spacing,) * 3)
+    t1.SetOrigin((float(ax[0]),) * 3)
+    t2 = sitk.GetImageFromArray((head * (1.4 - tissue)).astype(np.float32))
+    t2.CopyInformation(t1)
+    return t1, t2
+
+
+@pytest.fixture(scope="module")
+def images() -> tuple[sitk.Image, sitk.Image]:
+    return phantom()
+
+
+def motion(rx: float, ry: float, rz: float, t: tuple[float, float, float]) -> sitk.Transform:
+    a = sitk.Euler3DTransform()
+    a.SetCenter((0.0, 0.0, 0.0))
+    a.SetRotation(*(math.radians(v) for v in (rx, ry, rz)))
+    a.SetTranslation(t)
+    return a
+
+
+def box_corners() -> np.ndarray:
+    lo, hi = BOX
+    return np.array(
+        [[a, b, c] for a in (lo[0], hi[0]) for b in (lo[1], hi[1]) for c in (lo[2], hi[2])]
+    )
+
+
+def max_point_error(found: sitk.Transform, truth: sitk.Transform) -> float:
+    return max(
+        float(
+            np.linalg.norm(
+                np.subtract(found.TransformPoint(tuple(p)), truth.TransformPoint(tuple(p)))
+            )
+        )
+        for p in box_corners()
+    )
+
+
+def rotation_error_deg(found: sitk.Transform, truth: sitk.Transform) -> float:
+    r1 = np.asarray(found.GetMatrix()).reshape(3, 3)
+    r2 = np.asarray(truth.GetMatrix()).reshape(3, 3)
+    cos = (np.trace(r1 @ r2.T) - 1) / 2  # angle of the residual rotation (Rodrigues)
+    return math.degrees(math.acos(min(1.0, max(-1.0, cos))))
+
+
+@pytest.mark.parametrize("contrast", ["same", "inverted"])
+def test_known_rotation_and_translation_are_recovered(images, contrast):
+    t1, t2 = images
+    a = motion(3.0, -2.0, 4.0, (3.0, -2.0, 1.5))
+    moving = sitk.Resample(t1 if contrast == "same" else t2, t1, a, sitk.sitkLinear, 0.0)
+    found = register_rigid(t1, moving, box_mm=BOX)
+    truth = a.GetInverse()
+    assert found.method == "rigid"
+    assert max_point_error(found.transform, truth) < TOL_MM
+    assert rotation_error_deg(found.transform, truth) < TOL_DEG
+    # Total angle of the Euler rotation (3, -2, 4) degrees, by Rodrigues' trace formula.
+    r = np.asarray(a.GetMatrix()).reshape(3, 3)
+    assert found.rotation_deg == pytest.approx(
+        math.degrees(math.acos((np.trace(r) - 1) / 2)), abs=TOL_DEG
+    )
+    # The transform's centre is the box centre, so its translation is the centre's motion.
+    assert np.allclose(found.translation_mm, truth.TransformPoint((0.0, 0.0, 0.0)), atol=TOL_MM)
+    # 5.4 degrees total is above the bundled 5-degree QC threshold: the warning must say so.
+    assert any("rotated the series by 5." in w for w in found.warnings)
+    assert found.metric is not None and found.metric < load_settings().poor_metric
+
+
+@pytest.mark.parametrize("contrast", ["same", "inverted"])
+def test_motion_free_pair_comes_out_as_identity(images, contrast):
+    t1, t2 = images
+    found = register_rigid(t1, t1 if contrast == "same" else t2, box_mm=BOX)
+    assert max_point_error(found.transform, sitk.Transform()) < TOL_MM
+    assert found.rotation_deg < TOL_DEG
+    assert found.warnings == ()
+
+
+def test_small_motion_on_a_thick_slice_series(images):
+    t1, t2 = images
+    # The moving series: 1 mm in-plane, 4 mm slices (a 2D T2-like acquisition).
+    ref = sitk.Image(96, 96, 24, sitk.sitkFloat32)
+    ref.SetSpacing((1.0, 1.0, 4.0))
+    ref.SetOrigin((-47.5, -47.5, -46.0))
+    a = motion(0.0, 0.0, 2.0, (1.5, 1.0, -1.0))
+    moving = sitk.Resample(t2, ref, a, sitk.sitkLinear, 0.0)
+    found = register_rigid(t1, moving, box_mm=BOX)
+    assert max_point_error(found.transform, a.GetInverse()) < 1.0  # 4 mm slices: 1/4 slice
+    assert rotation_error_deg(found.transform, a.GetInverse()) < 1.0
+    assert found.warnings == ()
+
+
+def test_deterministic(images):
+    t1, t2 = images
+    moving = sitk.Resample(t2, t1, motion(1.0, 0.0, -1.0, (1.0, 0.5, 0.0)), sitk.sitkLinear, 0.0)
+    first = register_rigid(t1, moving, box_mm=BOX)
+    second = register_rigid(t1, moving, box_mm=BOX)
+    assert first.transform.GetParameters() == second.transform.GetParameters()
+    assert first.metric == second.metric
+
+
+def test_unrelated_images_are_not_silent(images):
+    t1, _ = images
+    noise = sitk.GetImageFromArray(np.random.default_rng(1).random((64, 64, 64)).astype(np.float32))
+    noise.CopyInformation(t1)
+    found = register_rigid(t1, noise, box_mm=BOX)
+    assert any("poor match" in w for w in found.warnings)
+
+
+def test_no_overlap_keeps_the_frame_of_reference_and_says_so(images):
+    t1, _ = images
+    far = (np.array([500.0, 500, 500]), np.array([510.0, 510, 510]))
+    found = register_rigid(t1, t1, box_mm=far)
+    assert found.method == "identity" and found.transform is None
+    assert found.warnings and "outside the anchor" in found.warnings[0]
+
+
+def test_bad_box_is_rejected(images):
+    t1, _ = images
+    with pytest.raises(ValueError, match='Argument "box_mm"'):
+        register_rigid(t1, t1, box_mm=(np.array([1.0, 1, 1]), np.array([0.0, 0, 0])))
+
+
+def test_identity_alignment():
+    found = identity_alignment()
+    assert found.method == "identity" and found.transform is None
+    assert found.to_json() == {
+        "method": "identity",
+        "translation_mm": [0.0, 0.0, 0.0],
+        "rotation_deg": 0.0,
+    }
+
+
+def test_site_lexicon_thresholds_apply_and_are_validated(images, tmp_path: Path):
+    t1, _ = images
+    shutil.copy(bundled_dir() / "alignment.toml", tmp_path / "alignment.toml")
+    text = (tmp_path / "alignment.toml").read_text()
+    (tmp_path / "alignment.toml").write_text(
+        text.replace("max_rotation_deg = 5.0", "max_rotation_deg = 0.5")
+    )
+    moving = sitk.Resample(t1, t1, motion(0.0, 0.0, 2.0, (0.0, 0.0, 0.0)), sitk.sitkLinear, 0.0)
+    found = register_rigid(t1, moving, box_mm=BOX, site_lexicon=tmp_path)
+    assert any("more than 0.5" in w for w in found.warnings)
+    (tmp_path / "alignment.toml").write_text(text.replace("margin_mm", "margn_mm"))
+    with pytest.raises(
+        InputError, match=r"alignment\.toml \[registration\]: unknown key\(s\) margn_mm"
+    ):
+        load_settings(tmp_path)
