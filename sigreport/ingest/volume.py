@@ -6,6 +6,7 @@ JPEG lossless, JPEG-LS and JPEG 2000 (see docs/ingestion.md). Only the stack ask
 
 from __future__ import annotations
 
+import warnings
 from collections import defaultdict
 from pathlib import Path
 
@@ -41,7 +42,10 @@ def _read(path: Path) -> Dataset:
 
 def _pixels(ds: Dataset, path: Path) -> np.ndarray:
     try:
-        return np.asarray(ds.pixel_array)
+        with warnings.catch_warnings():
+            # pydicom warns about recoverable oddities (e.g. excess padding it removes).
+            warnings.simplefilter("ignore")
+            return np.asarray(ds.pixel_array)
     except Exception as exc:  # no decoder, corrupt stream, wrong lengths
         ts = getattr(getattr(ds, "file_meta", None), "TransferSyntaxUID", None)
         name = ts.name if ts is not None else "unknown transfer syntax"
