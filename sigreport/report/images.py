@@ -79,19 +79,23 @@ def _resample_indices(n_in: int, spacing: float, out_pixel_mm: float) -> np.ndar
     return np.clip(np.floor(centres).astype(int), 0, n_in - 1)
 
 
-def outline(mask: np.ndarray) -> np.ndarray:
-    """The edge pixels of a boolean mask: inside, with a 4-neighbour outside (or at the border
-    of the array)."""
+def outline(mask: np.ndarray, width: int = 1) -> np.ndarray:
+    """The edge band of a boolean mask: pixels inside it within ``width`` 4-neighbour steps
+    of a pixel outside (the border of the array counts as outside)."""
     m = np.asarray(mask, dtype=bool)
-    padded = np.pad(m, 1, constant_values=False)
-    interior = padded[:-2, 1:-1] & padded[2:, 1:-1] & padded[1:-1, :-2] & padded[1:-1, 2:] & m
+    interior = m
+    for _ in range(max(1, int(width))):
+        padded = np.pad(interior, 1, constant_values=False)
+        interior = (
+            padded[:-2, 1:-1] & padded[2:, 1:-1] & padded[1:-1, :-2] & padded[1:-1, 2:] & interior
+        )
     return m & ~interior
 
 
 def render_key_image(
     key: KeySlice,
     *,
-    target_px: int = 240,
+    target_px: int = 200,
     max_upscale: float = 12.0,
     context: float = 1.5,
     margin_mm: float = 10.0,
@@ -131,9 +135,11 @@ def render_key_image(
     ci = c0 + _resample_indices(c1 - c0, dc, out_pixel_mm)
     grid = np.ix_(ri, ci)
     rgb = np.repeat(grey[grid][..., None], 3, axis=2)
+    # Two output pixels wide once upscaled, so that the line survives on-screen downscaling.
+    width = 2 if finest / out_pixel_mm >= 2 else 1
     if reference is not None:
-        rgb[outline(reference[grid])] = REFERENCE_COLOUR
-    rgb[outline(lesion[grid])] = LESION_COLOUR
+        rgb[outline(reference[grid], width)] = REFERENCE_COLOUR
+    rgb[outline(lesion[grid], width)] = LESION_COLOUR
     return rgb
 
 

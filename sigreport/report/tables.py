@@ -79,7 +79,7 @@ def table_rows(findings: Mapping[str, Any]) -> list[dict[str, Any]]:
                 if enhancement.get("raw_percent") is not None:
                     notes.append(f"unnormalized change {enhancement['raw_percent']:+.1f} %")
             if enhancement.get("pre") == role and enhancement.get("percent") is not None:
-                notes.append(f"pre-contrast baseline for {enhancement.get('post')}")
+                notes.append(f"baseline for {enhancement.get('post')}")
             for kind in ("fluid", "fat"):
                 flag = suppression.get(kind)
                 if not flag or flag.get("to") != role:
@@ -87,7 +87,7 @@ def table_rows(findings: Mapping[str, Any]) -> list[dict[str, Any]]:
                 row[f"{kind}_drop_percent"] = flag.get("drop_percent")
                 if flag.get("suppressed") is not None:
                     said = "suppressed" if flag["suppressed"] else "not suppressed"
-                    notes.append(f"{kind} {said} against {flag.get('from')}")
+                    notes.append(f"{kind} {said} vs {flag.get('from')}")
                 if flag.get("reliable") is False:
                     notes.append(f"{kind} flag unreliable")
             row["notes"] = "; ".join(notes)

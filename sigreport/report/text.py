@@ -105,7 +105,9 @@ def lesion_sentences(
 
     tissue = reference_tissue(lesion, findings)
     signal: Mapping[str, Any] = lesion.get("signal") or {}
-    items: list[str] = []
+    # Series sharing one graded wording are named together, in reading order of the first:
+    # "hyperintense to white matter on T2 and FLAIR, isointense on T1".
+    groups: dict[str, list[str]] = {}
     unmeasured: list[str] = []
     for role in ordered_roles(signal):
         stats = signal[role]
@@ -113,11 +115,13 @@ def lesion_sentences(
         if stats is None or stats.get("ratio") is None:
             unmeasured.append(name)
             continue
-        grade = phrases.grade(stats.get("ratio"), stats.get("grade"))
+        groups.setdefault(phrases.grade(stats.get("ratio"), stats.get("grade")), []).append(name)
+    items: list[str] = []
+    for grade, names in groups.items():
         key = "signal_first" if not items else "signal_next"
-        items.append(fill(s[key], key, grade=grade, tissue=tissue, role=name))
+        items.append(fill(s[key], key, grade=grade, tissue=tissue, role=wording.join(names)))
     if items:
-        out.append(fill(s["signal"], "signal", items=wording.join(items)))
+        out.append(fill(s["signal"], "signal", items=s["signal_separator"].join(items)))
     if unmeasured:
         out.append(
             fill(s["signal_unmeasured"], "signal_unmeasured", roles=wording.join(unmeasured))

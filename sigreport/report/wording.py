@@ -34,6 +34,7 @@ _SECTIONS: dict[str, set[str]] = {
     "patterns": {"none", "solid", "rim", "heterogeneous"},
     "sentences": {
         "heading", "size", "size_volume_only", "size_unknown", "signal", "signal_first",
+        "signal_separator",
         "signal_next", "signal_unmeasured", "fluid_suppressed", "fluid_not_suppressed",
         "fat_suppressed", "fat_not_suppressed", "suppression_unknown", "unreliable",
         "enhancing", "enhancing_no_pattern", "not_enhancing", "enhancement_unknown",

@@ -1,0 +1,155 @@
+"""report.md / report.txt: the draft paragraphs in the lexicon's wording, cautions on top and at
+the end, QC warnings prominent, unreliable flags said to be unreliable."""
+
+from __future__ import annotations
+
+import re
+import shutil
+
+import jinja2
+import pytest
+
+from sigreport import lexicon
+from sigreport.errors import InputError
+from sigreport.report.text import md_escape, render_text, report_context
+from sigreport.report.wording import Phrases, load_wording
+
+XSS = "<script>alert(1)</script>"
+
+
+def _lesion_block(text: str, lesion_id: str) -> str:
+    start = text.index(f"{lesion_id}: ")
+    nxt = re.search(r"\n(#+ )?L\d: ", text[start + 1 :])
+    return text[start : start + 1 + nxt.start()] if nxt else text[start:]
+
+
+@pytest.fixture(scope="module")
+def texts(report_dir):
+    return {
+        "md": (report_dir / "report.md").read_text(encoding="utf-8"),
+        "txt": (report_dir / "report.txt").read_text(encoding="utf-8"),
+    }
+
+
+@pytest.mark.parametrize("kind", ["md", "txt"])
+def test_cyst_like_lesion_suppresses_on_flair(texts, kind):
+    block = _lesion_block(texts[kind], "L1")
+    assert "suppresses on FLAIR" in block
+    assert "to white matter on" in block  # signal is relative to the named reference tissue
+    assert "91 %" in block
+
+
+@pytest.mark.parametrize("kind", ["md", "txt"])
+def test_fat_lesion_loses_signal_on_fat_suppressed_t1_and_flag_is_unreliable(texts, kind):
+    block = " ".join(_lesion_block(texts[kind], "L2").split())
+    assert "loses signal on fat-suppressed T1" in block
+    assert "unreliable" in block
+    assert "could not be measured on post-contrast T1" in block
+
+
+@pytest.mark.parametrize("kind", ["md", "txt"])
+def test_rim_lesion_reports_rim_enhancement_with_percent(texts, kind):
+    block = " ".join(_lesion_block(texts[kind], "L3").split())
+    assert "Rim enhancement (+84 %)" in block
+    assert "does not suppress on FLAIR" in block
+
+
+@pytest.mark.parametrize("kind", ["md", "txt"])
+def test_cautions_on_top_and_at_the_end(texts, findings, kind):
+    text = " ".join(texts[kind].split())
+    first_lesion = text.index("L1: ")
+    for caution in findings["cautions"]:
+        caution = md_escape(caution) if kind == "md" else caution
+        assert text.index(caution) < first_lesion
+        assert text.rindex(caution) > text.index(
+            "Quality control".upper() if kind == "txt" else "## Quality control"
+        )
+
+
+@pytest.mark.parametrize("kind", ["md", "txt"])
+def test_qc_warning_is_shown_before_the_findings(texts, kind):
+    text = " ".join(texts[kind].split())
+    assert text.index("fat control F1 did not drop on T1FS") < text.index("L1: ")
+    assert "WARNING" in text
+
+
+def test_plain_text_wraps_at_100_columns_and_has_no_markup(texts):
+    lines = texts["txt"].splitlines()
+    assert max(len(line) for line in lines) <= 100
+    assert "**" not in texts["txt"] and "| ---" not in texts["txt"] and "###" not in texts["txt"]
+
+
+def test_markdown_escapes_header_and_case_file_values(texts):
+    assert XSS not in texts["md"]
+    assert "&lt;script&gt;alert(1)&lt;/script&gt;" in texts["md"]
+    # One table row per lesion and role, after the header and the rule.
+    table = texts["md"].split("## Signal-behaviour table", 1)[1].split("## ", 1)[0]
+    assert len([ln for ln in table.splitlines() if re.match(r"\| L\d ", ln)]) == 15
+
+
+def test_behaviour_phrases_are_listed(findings):
+    wording, phrases = load_wording(), Phrases()
+    context = report_context(findings, wording, phrases)
+    for lesion, source in zip(context["lesions"], findings["lesions"], strict=True):
+        assert len(lesion["behaviours"]) == len(source["behaviour"])
+    # Whether or not the characterization rules know the key, its words appear.
+    phrase, considerations = phrases.behaviour("follows-fluid")
+    assert phrase
+    line = context["lesions"][0]["behaviours"][0]
+    assert phrase[:1].upper() + phrase[1:] in line
+    if considerations:
+        assert "consider" in line
+    assert phrases.behaviour("no-such-rule-xyz") == ("no such rule xyz", ())
+
+
+def test_a_site_can_reword_without_code(tmp_path, findings):
+    site = tmp_path / "site"
+    (site / "templates").mkdir(parents=True)
+    wording = (lexicon.bundled_dir() / "wording.toml").read_text(encoding="utf-8")
+    site_wording = wording.replace(
+        'fluid_suppressed = "It suppresses on {to}', 'fluid_suppressed = "Signal is nulled on {to}'
+    )
+    assert site_wording != wording
+    (site / "wording.toml").write_text(site_wording, encoding="utf-8")
+    (site / "templates" / "report.txt.j2").write_text(
+        "SITE {% for l in lesions %}{{ l.paragraph }}{% endfor %}\n", encoding="utf-8"
+    )
+    context = report_context(findings, load_wording(site), Phrases(site))
+    markdown, plain = render_text(context, site)
+    assert plain.startswith("SITE ") and "Signal is nulled on FLAIR" in plain
+    assert "Signal is nulled on FLAIR" in markdown  # bundled md template, site wording
+
+
+def test_templates_are_strict_about_undefined_names(tmp_path, findings):
+    site = tmp_path / "site"
+    (site / "templates").mkdir(parents=True)
+    (site / "templates" / "report.md.j2").write_text("{{ no_such_name }}\n", encoding="utf-8")
+    context = report_context(findings, load_wording(), Phrases())
+    with pytest.raises(jinja2.UndefinedError, match="no_such_name"):
+        render_text(context, site)
+
+
+def test_wording_with_a_missing_key_is_an_input_error(tmp_path):
+    site = tmp_path / "site"
+    site.mkdir()
+    wording = (lexicon.bundled_dir() / "wording.toml").read_text(encoding="utf-8")
+    (site / "wording.toml").write_text(
+        re.sub(r"(?m)^flow_void = .*$", "", wording), encoding="utf-8"
+    )
+    with pytest.raises(InputError, match=r"\[sentences\]: missing key\(s\) flow_void"):
+        load_wording(site)
+
+
+def test_wording_with_an_unknown_placeholder_names_the_key(tmp_path, findings):
+    site = tmp_path / "site"
+    site.mkdir()
+    shutil.copy(lexicon.bundled_dir() / "wording.toml", site / "wording.toml")
+    text = (site / "wording.toml").read_text(encoding="utf-8")
+    (site / "wording.toml").write_text(
+        text.replace('no_flow_void = "No flow void."', 'no_flow_void = "No flow void."').replace(
+            'size = "It measures {volume_ml} ml', 'size = "It measures {volume} ml'
+        ),
+        encoding="utf-8",
+    )
+    with pytest.raises(InputError, match=r"\[sentences\] size: cannot fill"):
+        report_context(findings, load_wording(site), Phrases(site))
