@@ -142,14 +142,17 @@ class Build:
         return roi(roi_id, RoiKind.CONTROL, values, tissue=tissue, **kw)
 
 
-@pytest.fixture
+@pytest.fixture(scope="session")
 def build() -> type[Build]:
     return Build
 
 
-@pytest.fixture
+@pytest.fixture(scope="session")
 def rules():
-    return load_rules(None)
+    # The bundled lexicon, whatever a developer's $SIGREPORT_LEXICON says.
+    with pytest.MonkeyPatch.context() as mp:
+        mp.delenv("SIGREPORT_LEXICON", raising=False)
+        return load_rules(None)
 
 
 @pytest.fixture
