@@ -306,8 +306,8 @@ def characterize(measured: MeasuredStudy, rules: Rules) -> Characterization:
     one, else by the first lesion's reference, else by the first reference ROI; with no
     reference at all its drop uses raw medians (valid only if the two series share a scaling).
     """
-    roles = [r for r in Role if r is not Role.UNKNOWN and r in measured.stacks]
-    role_set = set(roles)
+    roles: list[Role] = [r for r in Role if r is not Role.UNKNOWN and r in measured.stacks]
+    role_set: set[Role] = set(roles)
     ctx = _Context(
         measured=measured,
         rules=rules,
@@ -324,8 +324,8 @@ def characterize(measured: MeasuredStudy, rules: Rules) -> Characterization:
     controls = [r for r in measured.rois if r.spec.kind is RoiKind.CONTROL]
 
     _note_unmeasured(ctx)
-    for ref in references:
-        _check_homogeneous(ctx, ref)
+    for reference in references:
+        _check_homogeneous(ctx, reference)
 
     def reference_of(roi: MeasuredRoi) -> MeasuredRoi | None:
         wanted = roi.spec.reference
