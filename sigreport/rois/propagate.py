@@ -126,6 +126,8 @@ def _index_box(
     """(lo, hi) inclusive (x, y, z) voxel index range that can hold region voxels, or None."""
     origin, spacing, direction, size = _geometry(image)
     lo, hi = (np.asarray(v, dtype=np.float64) for v in region.bounds_mm())
+    if not (np.all(np.isfinite(lo)) and np.all(np.isfinite(hi))):
+        return None  # an empty region has no box
     corners = np.array(
         [
             [(lo, hi)[i][0], (lo, hi)[j][1], (lo, hi)[k][2]]
@@ -141,7 +143,7 @@ def _index_box(
             # Not invertible: search the whole image.
             return np.zeros(3, dtype=np.int64), size - 1
         corners = _map_points(inverse, affine_of_transform(inverse, corners), corners)
-    cont = ((corners - origin) @ direction) / spacing  # direction is orthonormal: D^-1 = D^T
+    cont = ((corners - origin) @ np.linalg.inv(direction).T) / spacing
     first = np.floor(cont.min(axis=0)).astype(np.int64) - 1
     last = np.ceil(cont.max(axis=0)).astype(np.int64) + 1
     first = np.maximum(first, 0)
