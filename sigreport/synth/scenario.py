@@ -54,7 +54,7 @@ class RoiPlan:
     center_mm: Vec3
     site: str | None = None
     tissue: str | None = None  # reference / control tissue (a lexicon key)
-    lesion: str | None = None  # lesions: which painted lesion (reported in truth.json)
+    lesion: str | None = None  # lesions: what the ROI measures (truth.json "tissue")
     contains: tuple[str, ...] = ()
     radius_mm: float | None = None
     semi_axes_mm: Vec3 | None = None
@@ -356,10 +356,7 @@ def load_scenario(path: Path | str) -> Scenario:
         raise InputError(f"{w}: ROI ids must be present and unique, got {ids}")
     if not any(r.kind is RoiKind.REFERENCE for r in rois):
         raise InputError(f"{w}: needs at least one reference ROI")
-    lesion_names = {lesion.name for lesion in lesions}
     for r in rois:
-        if r.lesion is not None and r.lesion not in lesion_names:
-            raise InputError(f"{w}: ROI {r.id} names unknown lesion {r.lesion!r}")
         if r.reference is not None and r.reference not in ids:
             raise InputError(f"{w}: ROI {r.id} names unknown reference {r.reference!r}")
     try:

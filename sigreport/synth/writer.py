@@ -14,7 +14,10 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+from pydicom.dataelem import DataElement
 from pydicom.dataset import Dataset, FileMetaDataset
+from pydicom.filebase import DicomBytesIO
+from pydicom.filewriter import write_data_element, write_file_meta_info
 from pydicom.sequence import Sequence as DicomSequence
 from pydicom.sr.codedict import codes
 from pydicom.uid import (
@@ -59,8 +62,11 @@ class SeriesOutput:
 
 def _ds(value: float) -> str:
     """A DS string of at most 16 characters (PS3.5 6.2)."""
-    text = f"{value:.6g}"
-    return text if len(text) <= 16 else f"{value:.8e}"[:16]
+    for digits in range(10, 4, -1):
+        text = f"{value:.{digits}g}"
+        if len(text) <= 16:
+            return text
+    return f"{value:.4e}"
 
 
 def _scanning(plan: SeriesPlan) -> tuple[list[str], list[str], list[str], str]:
@@ -88,8 +94,10 @@ def _common(header: StudyHeader, out: SeriesOutput, sop_class: str) -> Dataset:
     ds.SpecificCharacterSet = "ISO_IR 100"
     ds.SOPClassUID = sop_class
     ds.StudyDate = ds.SeriesDate = ds.AcquisitionDate = ds.ContentDate = s.date
-    seconds = 600 * plan.number
-    series_time = f"{int(s.time[:2]) + seconds // 3600:02d}{(seconds // 60) % 60:02d}00"
+    # Each series starts a few minutes after the previous one (by series number).
+    hh, mm, ss = int(s.time[0:2]), int(s.time[2:4]), int(s.time[4:6] or 0)
+    start = (hh * 3600 + mm * 60 + ss + 240 * plan.number) % 86400
+    series_time = f"{start // 3600:02d}{start // 60 % 60:02d}{start % 60:02d}"
     ds.StudyTime = s.time
     ds.SeriesTime = ds.AcquisitionTime = ds.ContentTime = series_time
     ds.AccessionNumber = s.accession
@@ -189,20 +197,36 @@ def write_classic(header: StudyHeader, out: SeriesOutput, folder: Path) -> list[
     template.RescaleIntercept = _ds(out.intercept)
     template.RescaleSlope = _ds(out.slope)
     template.RescaleType = "US"
+    varying = {0x00080018, 0x00200013, 0x00200032, 0x00201041, 0x7FE00010}
+    shared = {tag: _encode(template[tag]) for tag in template.keys() if tag not in varying}
     paths = []
     for k in range(geo.size[2]):
-        ds = template.copy()
+        ds = Dataset()
         ds.SOPInstanceUID = out.sop_instance_uids[k]
         ds.InstanceNumber = k + 1
         pos = geo.slice_position(k)
         ds.ImagePositionPatient = [_ds(v) for v in pos]
         ds.SliceLocation = _ds(float(np.dot(pos, geo.normal)))
-        ds.PixelData = np.ascontiguousarray(out.pixels[k], dtype="<u2").tobytes()
-        ds.file_meta = _file_meta(MRImageStorage, ds.SOPInstanceUID)
+        ds.add_new(0x7FE00010, "OW", np.ascontiguousarray(out.pixels[k], dtype="<u2").tobytes())
+        chunks = dict(shared)
+        chunks.update({tag: _encode(ds[tag]) for tag in ds.keys()})
+        meta = DicomBytesIO()
+        meta.is_little_endian, meta.is_implicit_VR = True, False
+        write_file_meta_info(meta, _file_meta(MRImageStorage, ds.SOPInstanceUID))
         path = folder / f"IM{k + 1:04d}.dcm"
-        ds.save_as(path, enforce_file_format=True)
+        # Elements in ascending tag order (PS3.5 7.1); the shared ones are encoded once.
+        body = b"".join(chunks[tag] for tag in sorted(chunks))
+        path.write_bytes(b"\0" * 128 + b"DICM" + meta.getvalue() + body)
         paths.append(path)
     return paths
+
+
+def _encode(elem: DataElement) -> bytes:
+    """One data element in explicit VR little endian."""
+    fp = DicomBytesIO()
+    fp.is_little_endian, fp.is_implicit_VR = True, False
+    write_data_element(fp, elem)
+    return fp.getvalue()
 
 
 def _item(**attrs: object) -> Dataset:
