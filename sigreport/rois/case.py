@@ -403,7 +403,7 @@ def load_case(path: Path) -> Case:
             parsed.append(fields)
 
     # Kinds as far as they could be read, so that reference checks work on partly bad files.
-    kinds: dict[str, str] = {}
+    kinds: dict[str, Any] = {}
     for table in raw_rois:
         if isinstance(table, dict) and isinstance(table.get("id"), str):
             kinds.setdefault(table["id"], table.get("kind"))

@@ -36,9 +36,14 @@ class Region(Protocol):
     shapes and plain label images); ``frame_of_reference_uid`` likewise.
     """
 
-    id: str
-    source_series_uid: str | None
-    frame_of_reference_uid: str | None
+    @property
+    def id(self) -> str: ...
+
+    @property
+    def source_series_uid(self) -> str | None: ...
+
+    @property
+    def frame_of_reference_uid(self) -> str | None: ...
 
     def contains(self, points_lps: np.ndarray) -> np.ndarray:
         """``(N, 3)`` LPS points in mm -> ``(N,)`` bool, True where a point is inside."""
