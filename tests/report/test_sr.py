@@ -1,0 +1,164 @@
+"""sr.dcm: valid per dicom3tools' dciodvfy, and read back by highdicom with the same values."""
+
+from __future__ import annotations
+
+import os
+import shutil
+import subprocess
+
+import highdicom as hd
+import pytest
+from pydicom import dcmread
+from pydicom.sr.codedict import codes
+
+from sigreport.report.sr import PRIVATE_SCHEME, build_sr, grade_name, role_method
+
+
+@pytest.fixture(scope="module")
+def sr_path(report_dir):
+    return report_dir / "sr.dcm"
+
+
+@pytest.fixture(scope="module")
+def sr(sr_path):
+    return hd.sr.srread(sr_path)
+
+
+@pytest.mark.dciodvfy
+def test_sr_passes_dciodvfy(sr_path):
+    binary = shutil.which("dciodvfy")
+    if binary is None:
+        if os.environ.get("CI"):
+            pytest.fail("dciodvfy (Debian dicom3tools) is required when CI is set")
+        pytest.skip("dciodvfy (Debian dicom3tools) is not installed")
+    result = subprocess.run([binary, str(sr_path)], capture_output=True, text=True, timeout=60)
+    output = result.stdout + result.stderr
+    assert "Comprehensive3DSR" in output  # dciodvfy recognised the IOD it checks against
+    errors = [line for line in output.splitlines() if line.startswith("Error")]
+    assert errors == []
+
+
+def test_sr_is_a_draft_comprehensive_3d_sr(sr):
+    # PS3.4 / PS3.6: Comprehensive 3D SR Storage SOP class.
+    assert sr.SOPClassUID == "1.2.840.10008.5.1.4.1.1.88.34"
+    assert sr.CompletionFlag == "PARTIAL" and sr.VerificationFlag == "UNVERIFIED"
+    assert sr.ContentTemplateSequence[0].TemplateIdentifier == "1500"
+    scheme = sr.CodingSchemeIdentificationSequence[0]
+    assert scheme.CodingSchemeDesignator == PRIVATE_SCHEME
+
+
+def test_patient_and_study_come_from_the_source_images(sr, study):
+    source = dcmread(study["T2"].instances[1].path, stop_before_pixels=True)
+    for keyword in ("PatientID", "PatientName", "StudyInstanceUID", "AccessionNumber", "StudyDate"):
+        assert sr.get(keyword) == source.get(keyword), keyword
+
+
+@pytest.fixture(scope="module")
+def groups(sr):
+    """Each measurement group read once by highdicom: (group, measurements, evaluations)."""
+    return {
+        g.tracking_identifier.split(" ")[0]: (
+            g,
+            g.get_measurements(),
+            g.get_qualitative_evaluations(),
+        )
+        for g in sr.content.get_image_measurement_groups()
+    }
+
+
+def test_one_measurement_group_per_lesion_tracked_by_id_and_site(groups, findings):
+    assert sorted(groups) == sorted(lesion["id"] for lesion in findings["lesions"])
+    assert groups["L1"][0].tracking_identifier == "L1 (right frontal white matter)"
+
+
+def _value(measurements, name, method=None, derivation=None):
+    found = [
+        m
+        for m in measurements
+        if m.name == name
+        and (method is None or m.method == method)
+        and (derivation is None or m.derivation == derivation)
+    ]
+    assert len(found) == 1, (name, method, derivation, len(found))
+    return found[0]
+
+
+def test_measurement_values_read_back(groups, findings):
+    for lesion in findings["lesions"]:
+        _, measurements, _ = groups[lesion["id"]]
+        volume = _value(measurements, codes.SCT.Volume)
+        assert volume.value == pytest.approx(lesion["volume_ml"])
+        assert volume.unit.value == "ml"
+        for role, stats in lesion["signal"].items():
+            if stats is None:
+                continue
+            mean = _value(
+                measurements, codes.DCM.MRSignalIntensity, role_method(role), codes.cid7464.Mean
+            )
+            assert mean.value == pytest.approx(stats["mean"])
+            median = _value(
+                measurements, codes.DCM.MRSignalIntensity, role_method(role), codes.cid7464.Median
+            )
+            assert median.value == pytest.approx(stats["median"])
+            ratio = _value(measurements, codes.SCT.Ratio, role_method(role))
+            assert ratio.value == pytest.approx(stats["ratio"])
+            assert ratio.unit.value == "{ratio}"
+
+
+def test_enhancement_and_suppression_read_back(groups):
+    [enh] = [m for m in groups["L3"][1] if m.name.value == "ENH-PCT"]
+    assert enh.value == pytest.approx(84.0) and enh.unit.value == "%"
+    [fluid] = [m for m in groups["L1"][1] if m.name.value == "DROP-FLUID"]
+    assert fluid.value == pytest.approx(91.1)
+
+
+def test_grade_codes_are_cid_6343(groups, findings):
+    expected = {
+        "hyperintense": codes.cid6343.Hyperintense,
+        "isointense": codes.cid6343.Isointense,
+        "hypointense": codes.cid6343.Hypointense,
+    }
+    for lesion in findings["lesions"]:
+        _, _, all_evaluations = groups[lesion["id"]]
+        for role, stats in lesion["signal"].items():
+            evaluations = [e for e in all_evaluations if e.name == grade_name(role)]
+            if stats is None:
+                assert evaluations == []
+                continue
+            assert len(evaluations) == 1
+            assert evaluations[0].value == expected[stats["grade"]]
+    # RADLEX RID35805 "Hyperintense" (PS3.16 CID 6343).
+    assert expected["hyperintense"].value == "RID35805"
+
+
+def test_flags_are_coded(groups):
+    [pattern] = [e for e in groups["L3"][2] if e.name == codes.RADLEX.EnhancementPattern]
+    assert pattern.value.meaning == "Rim enhancement"
+    reliable = [e for e in groups["L2"][2] if e.name.value == "RELIABLE-FAT"]
+    assert len(reliable) == 1 and reliable[0].value == codes.SCT.No
+
+
+def test_measurements_reference_their_source_images(sr, groups, study):
+    measurements = groups["L1"][1]
+    mean = _value(measurements, codes.DCM.MRSignalIntensity, role_method("T2"), codes.cid7464.Mean)
+    [ref] = mean.referenced_images
+    assert ref.referenced_sop_instance_uid == study["T2"].instances[1].sop_instance_uid
+    evidence = {
+        item.ReferencedSOPInstanceUID
+        for study_item in sr.CurrentRequestedProcedureEvidenceSequence
+        for series in study_item.ReferencedSeriesSequence
+        for item in series.ReferencedSOPSequence
+    }
+    assert evidence == {s.instances[1].sop_instance_uid for s in study.values()}
+
+
+def test_cautions_travel_with_the_sr(sr, findings):
+    texts = [item.TextValue for item in sr.ContentSequence if item.ValueType == "TEXT"]
+    for caution in findings["cautions"]:
+        assert caution in texts
+    assert any("fat-suppression-failed" in t for t in texts)
+
+
+def test_sr_without_any_source_instance_is_refused(findings):
+    with pytest.raises(ValueError, match='Argument "stacks" holds no source instance'):
+        build_sr(findings, [], {})
