@@ -12,6 +12,7 @@ from sigreport.rois.regions import (
     Region,
     SphereRegion,
     build_region,
+    union_bounds,
 )
 
 __all__ = [
@@ -23,6 +24,7 @@ __all__ = [
     "GridRegion",
     "ContourRegion",
     "build_region",
+    "union_bounds",
     "load_mask_region",
     "RoiSample",
     "sample_region",

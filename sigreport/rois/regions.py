@@ -11,6 +11,7 @@ regions live in :mod:`sigreport.rois.masks`.
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from dataclasses import dataclass
 from typing import Protocol, runtime_checkable
 
@@ -25,6 +26,7 @@ __all__ = [
     "BoxRegion",
     "build_region",
     "as_points",
+    "union_bounds",
 ]
 
 
@@ -129,6 +131,20 @@ class BoxRegion:
     def volume_mm3(self) -> float:
         x, y, z = self.size_mm
         return x * y * z
+
+
+def union_bounds(regions: Iterable[Region]) -> tuple[np.ndarray, np.ndarray]:
+    """The LPS box enclosing every region (e.g. ``box_mm`` for :func:`register_rigid`).
+
+    Raises
+    ------
+    ValueError
+        When ``regions`` is empty.
+    """
+    boxes = [tuple(np.asarray(v, dtype=np.float64) for v in r.bounds_mm()) for r in regions]
+    if not boxes:
+        raise ValueError('Argument "regions" must hold at least one region.')
+    return np.min([b[0] for b in boxes], axis=0), np.max([b[1] for b in boxes], axis=0)
 
 
 def build_region(spec: RoiSpec) -> Region:

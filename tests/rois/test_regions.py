@@ -17,6 +17,7 @@ from sigreport.rois import (
     build_region,
     max_diameter_mm,
     sample_region,
+    union_bounds,
     volume_ml,
 )
 
@@ -127,3 +128,12 @@ def test_empty_sample_has_zero_size():
 def test_contains_rejects_a_wrong_shape():
     with pytest.raises(ValueError, match=r'"points_lps" must have shape \(N, 3\), got \(3,\)'):
         SphereRegion.of("L1", (0, 0, 0), 1.0).contains(np.zeros(3))
+
+
+def test_union_bounds_encloses_every_region():
+    lo, hi = union_bounds(
+        [SphereRegion.of("L1", (0, 0, 0), 2.0), BoxRegion("R1", (10.0, -5.0, 1.0), (2.0, 4.0, 6.0))]
+    )
+    assert lo.tolist() == [-2.0, -7.0, -2.0] and hi.tolist() == [11.0, 2.0, 4.0]
+    with pytest.raises(ValueError, match='"regions" must hold at least one region'):
+        union_bounds([])
