@@ -131,6 +131,8 @@ class FrameRecord:
 # from each of thousands of files). Text VRs that depend on the character set (PN, LO, SH...)
 # go through pydicom.
 _ASCII_VRS = frozenset({"DS", "IS", "CS", "UI", "DA", "TM", "DT", "AS"})
+_TEXT_VRS = frozenset({"LO", "SH", "PN", "ST", "LT", "UT", "UC"})
+_BINARY_INT = {"US": ("H", 2), "SS": ("h", 2), "UL": ("I", 4), "SL": ("i", 4)}  # single values
 
 
 @cache
@@ -156,12 +158,18 @@ def _get(ds: Dataset, keyword: str) -> Any:
             return None
         if isinstance(element, RawDataElement):
             vr = element.VR or _dictionary_vr(tag)
-            if vr in _ASCII_VRS:
-                raw = element.value
+            raw = element.value
+            if vr in _ASCII_VRS or (vr in _TEXT_VRS and (not raw or raw.isascii())):
+                # Pure ASCII text reads the same in every character set (PS3.5 6.1).
                 text = raw.decode("latin-1").strip(" \x00") if raw else ""
                 if not text:
                     return None
+                if vr in _TEXT_VRS and vr in ("ST", "LT", "UT"):
+                    return text
                 return [t.strip() for t in text.split("\\")] if "\\" in text else text
+            if vr in _BINARY_INT and raw is not None and len(raw) == _BINARY_INT[vr][1]:
+                fmt = ("<" if element.is_little_endian else ">") + _BINARY_INT[vr][0]
+                return struct.unpack(fmt, raw)[0]
         value = ds[tag].value
     except Exception:  # a malformed element whose value cannot be converted
         return None

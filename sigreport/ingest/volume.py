@@ -33,9 +33,20 @@ def _apply(stored: np.ndarray, scaling: Scaling) -> np.ndarray:
     return out
 
 
+# What decoding and scaling need; other elements are skipped by dcmread (faster loading).
+_LOAD_TAGS = [
+    "SOPClassUID", "Rows", "Columns", "SamplesPerPixel", "PhotometricInterpretation",
+    "PlanarConfiguration", "BitsAllocated", "BitsStored", "HighBit", "PixelRepresentation",
+    "NumberOfFrames", "RescaleSlope", "RescaleIntercept", "RealWorldValueMappingSequence",
+    "SharedFunctionalGroupsSequence", "PerFrameFunctionalGroupsSequence", "PixelData",
+    "FloatPixelData", "DoubleFloatPixelData", "ExtendedOffsetTable",
+    "ExtendedOffsetTableLengths", "SmallestImagePixelValue", "LargestImagePixelValue",
+]  # fmt: skip
+
+
 def _read(path: Path) -> Dataset:
     try:
-        return pydicom.dcmread(path)
+        return pydicom.dcmread(path, specific_tags=_LOAD_TAGS)
     except Exception as exc:  # the file changed or broke since it was indexed
         raise InputError(f"{path.name}: cannot be read: {exc}") from None
 
