@@ -10,6 +10,8 @@ from __future__ import annotations
 
 import json
 import math
+import shutil
+import tempfile
 import tomllib
 from dataclasses import dataclass, replace
 from pathlib import Path
@@ -24,7 +26,7 @@ from sigreport.model import EnhancementPattern, RoiKind, Role
 from sigreport.synth import phantom
 from sigreport.synth.geometry import SeriesGeometry, model_image, plan_geometry, sample
 from sigreport.synth.physics import rician
-from sigreport.synth.scenario import RoiPlan, Scenario, load_scenario
+from sigreport.synth.scenario import RoiPlan, Scenario, SeriesPlan, load_scenario
 from sigreport.synth.sequences import ResolvedSeries, resolve_ti, tissue_signals
 from sigreport.synth.tissues import TissueTable, demo_dir, load_tissues
 from sigreport.synth.writer import SeriesOutput, StudyHeader, write_classic, write_enhanced
@@ -286,9 +288,6 @@ def generate_study(
     table = load_tissues(scn.field_strength_t)
     _check_scenario(scn, table)
     rules = _truth_rules()
-    seeds = np.random.SeedSequence([scn.seed, 20261201])
-    rng_bias, rng_motion, rng_noise, rng_gain = (np.random.default_rng(s) for s in seeds.spawn(4))
-
     solids = phantom.anatomy() + [s for lesion in scn.lesions for s in lesion.solids]
     grid = phantom.default_grid()
     model = phantom.build(grid, solids)
@@ -305,7 +304,8 @@ def generate_study(
             )
     head = model.fraction_of([t for t in model.tissues if t != "air"]) > 0.5
 
-    entropy = [scn.seed, scn.name, scn.field_strength_t, enhanced, scn.motion]
+    entropy = [scn.seed, scn.name, scn.field_strength_t, enhanced, scn.motion, fat_sat_failed]
+    entropy.append(useless_descriptions)
     study_uid = generate_uid(entropy_srcs=[*map(str, entropy), "study"])
     header = StudyHeader(
         patient=scn.patient,
@@ -316,8 +316,61 @@ def generate_study(
         agent=table.agent,
     )
     anchor_plan = next(s for s in scn.series if s.role is scn.anchor)
+    for plan in scn.series:
+        geo = plan_geometry(plan)
+        for roi in scn.rois:
+            _check_in_view(roi, plan.role, geo)
+    # Write into a hidden sibling folder and rename it at the end, so that a failure leaves no
+    # half-written study behind.
+    out_dir.parent.mkdir(parents=True, exist_ok=True)
+    work = Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.", dir=out_dir.parent))
+    work.chmod(0o755)
+    try:
+        _write(
+            scn,
+            table,
+            rules,
+            model,
+            masks,
+            head,
+            header,
+            anchor_plan,
+            work,
+            enhanced,
+            fat_sat_failed,
+            useless_descriptions,
+            entropy,
+        )
+        if out_dir.exists():
+            out_dir.rmdir()  # empty, checked above
+        work.rename(out_dir)
+    except BaseException:
+        shutil.rmtree(work, ignore_errors=True)
+        raise
+    return GeneratedStudy(out_dir, out_dir / "study", out_dir / "case.toml", out_dir / "truth.json")
+
+
+def _write(
+    scn: Scenario,
+    table: TissueTable,
+    rules: dict[str, float],
+    model: phantom.HeadModel,
+    masks: dict[str, np.ndarray],
+    head: np.ndarray,
+    header: StudyHeader,
+    anchor_plan: SeriesPlan,
+    out_dir: Path,
+    enhanced: bool,
+    fat_sat_failed: bool,
+    useless_descriptions: bool,
+    entropy: list[Any],
+) -> None:
+    """Image every series and write the study, the case file and the truth into ``out_dir``."""
+    grid = model.grid
+    seeds = np.random.SeedSequence([scn.seed, 20261201])
+    rng_bias, rng_motion, rng_noise, rng_gain = (np.random.default_rng(s) for s in seeds.spawn(4))
     study_dir = out_dir / "study"
-    study_dir.mkdir(parents=True, exist_ok=True)
+    study_dir.mkdir()
 
     medians: dict[str, dict[Role, float]] = {roi.id: {} for roi in scn.rois}
     gains: dict[str, tuple[float, float, float]] = {}  # group -> gain, slope, intercept
@@ -330,8 +383,6 @@ def generate_study(
         for roi in scn.rois:
             medians[roi.id][plan.role] = float(np.median(biased[masks[roi.id]]))
         geo = plan_geometry(plan)
-        for roi in scn.rois:
-            _check_in_view(roi, plan.role, geo)
         move = NO_MOTION
         if scn.motion and plan.role is not scn.anchor:
             move = _random_motion(scn, rng_motion)
@@ -414,8 +465,5 @@ def generate_study(
         "series": series_json,
         "rois": rois_json,
     }
-    case_path = out_dir / "case.toml"
-    case_path.write_text(_case_text(scn, anchor_plan.number), encoding="utf-8")
-    truth_path = out_dir / "truth.json"
-    truth_path.write_text(json.dumps(truth, indent=2) + "\n", encoding="utf-8")
-    return GeneratedStudy(out_dir, study_dir, case_path, truth_path)
+    (out_dir / "case.toml").write_text(_case_text(scn, anchor_plan.number), encoding="utf-8")
+    (out_dir / "truth.json").write_text(json.dumps(truth, indent=2) + "\n", encoding="utf-8")
