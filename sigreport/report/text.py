@@ -56,15 +56,17 @@ def md_escape(text: Any) -> str:
 
 
 def wrap(text: Any, width: int = TEXT_WIDTH, indent: str = "", first: str | None = None) -> str:
-    """Wrap plain text at ``width`` columns (``textwrap``; long words are not broken)."""
+    """Wrap plain text at ``width`` columns (``textwrap``; long words are not broken, and a
+    number stays on the line of its unit: "+84 %")."""
+    glued = re.sub(r"(\d) (%|ml|mm)(?!\w)", "\\1\u00a0\\2", " ".join(str(text).split()))
     return textwrap.fill(
-        " ".join(str(text).split()),
+        glued,
         width=width,
         initial_indent=indent if first is None else first,
         subsequent_indent=indent,
         break_long_words=False,
         break_on_hyphens=False,
-    )
+    ).replace("\u00a0", " ")
 
 
 def _capital(sentence: str) -> str:

@@ -153,3 +153,12 @@ def test_wording_with_an_unknown_placeholder_names_the_key(tmp_path, findings):
     )
     with pytest.raises(InputError, match=r"\[sentences\] size: cannot fill"):
         report_context(findings, load_wording(site), Phrases(site))
+
+
+def test_wrapping_keeps_a_number_with_its_unit():
+    from sigreport.report.text import wrap
+
+    # 49 two-character words fill 98 columns: "+1" fits on line one only if split from "%".
+    lines = wrap("a " * 49 + "+1 % and 5 ml y", 100).splitlines()
+    assert lines[1].startswith("+1 % and 5 ml")
+    assert all(len(line) <= 100 for line in lines)
