@@ -141,7 +141,7 @@ class Phrases:
             from sigreport.measure import grade_phrase, load_rules
         except ImportError:
             return
-        self.rules = load_rules(site)
+        self.rules = load_rules(Path(site) if site is not None else None)
         self._grade_phrase = grade_phrase
 
     def behaviour(self, key: str) -> tuple[str, tuple[str, ...]]:
