@@ -87,8 +87,10 @@ class EnhancementResult:
     enhancing: bool | None = None
     pattern: EnhancementPattern | None = None
     raw_percent: float | None = None  # only when pre and post share settings and scaling
-    shell_percent: float | None = None
+    shell_percent: float | None = None  # of the pair the pattern comes from
     core_percent: float | None = None
+    pattern_pre: Role | None = None  # the pair the pattern comes from (finest voxels)
+    pattern_post: Role | None = None
 
     def to_json(self) -> dict[str, Any]:
         out: dict[str, Any] = {
@@ -239,7 +241,7 @@ def _pattern(
         return EnhancementPattern.NONE if enhancing is False else None
     s, c = rounded_percent(shell), rounded_percent(core)
     lo = e.enhancing_min_percent
-    if s >= lo and c <= e.core_max_percent_for_rim:
+    if s >= lo and (c <= e.core_max_percent_for_rim or c <= e.rim_max_core_to_shell * s):
         return EnhancementPattern.RIM
     if s >= lo and c >= lo and min(s, c) / max(s, c) >= e.solid_min_core_to_shell:
         return EnhancementPattern.SOLID
@@ -256,6 +258,10 @@ class _Context:
     pairs: dict[str, tuple[Role, Role] | None]
     qc: list[QcNote] = field(default_factory=list)
     failed: set[str] = field(default_factory=set)
+    # (percent pair, pattern pair) -> lesion ids whose pattern came from the finer pair
+    pattern_pairs: dict[tuple[tuple[Role, Role], tuple[Role, Role]], list[str]] = field(
+        default_factory=dict
+    )
 
     def note(self, level: QcLevel, code: str, message: str) -> None:
         self.qc.append(QcNote(level, code, message))
@@ -374,6 +380,14 @@ def characterize(measured: MeasuredStudy, rules: Rules) -> Characterization:
         )
 
     results = tuple(_lesion(ctx, lesion, lesion_refs[lesion.spec.id]) for lesion in lesions)
+    for (pair, finer), ids in ctx.pattern_pairs.items():
+        ctx.note(
+            QcLevel.INFO,
+            "enhancement-pattern-pair",
+            f"enhancement pattern of {', '.join(ids)} from {finer[0].value} -> {finer[1].value}, "
+            f"whose voxels are finer than those of {pair[0].value} -> {pair[1].value} (which "
+            "gives the percent): thick slices average a thin rim into the core",
+        )
     return Characterization(lesions=results, rois=tuple(roi_entries), qc=tuple(ctx.qc))
 
 
@@ -578,18 +592,42 @@ def _enhancement(
     e = ctx.rules.thresholds.enhancement
     percent = _percent_change(ratios.get(post), ratios.get(pre))
     enhancing = None if percent is None else rounded_percent(percent) >= e.enhancing_min_percent
-    shell = _part_percent(lesion, ref, pre, post, "shell")
-    core = _part_percent(lesion, ref, pre, post, "core")
-    pattern = None if percent is None else _pattern(shell, core, enhancing, ctx.rules)
+    # The pattern needs voxels small against the rim: of the pairs the study has, use the one
+    # whose coarser series has the smallest largest spacing (thick 2D slices average a thin rim
+    # into the core); ties keep the pair order.
+    stacks = ctx.measured.stacks
+    parts = {
+        p: (
+            _part_percent(lesion, ref, p[0], p[1], "shell"),
+            _part_percent(lesion, ref, p[0], p[1], "core"),
+        )
+        for p in ENHANCEMENT_PAIRS
+        if p[0] in stacks and p[1] in stacks
+    }
+    usable = [p for p, (sh, co) in parts.items() if sh is not None and co is not None]
+    pattern_pair = (
+        min(usable, key=lambda p: max(*stacks[p[0]].spacing_mm, *stacks[p[1]].spacing_mm))
+        if usable
+        else pair
+    )
+    shell, core = parts.get(pattern_pair, (None, None))
+    pattern_percent = _percent_change(ratios.get(pattern_pair[1]), ratios.get(pattern_pair[0]))
+    pattern_enhancing = (
+        None
+        if pattern_percent is None
+        else rounded_percent(pattern_percent) >= e.enhancing_min_percent
+    )
+    pattern = None if percent is None else _pattern(shell, core, pattern_enhancing, ctx.rules)
     if percent is not None and pattern is None:
         ctx.note(
             QcLevel.INFO,
             "enhancement-pattern-unknown",
             f"{lesion.spec.id}: too small to split into shell and core; pattern not determined",
         )
+    if pattern is not None and pattern_pair != pair:
+        ctx.pattern_pairs.setdefault((pair, pattern_pair), []).append(lesion.spec.id)
 
     raw = None
-    stacks = ctx.measured.stacks
     a, b = stacks[pre], stacks[post]
     if (
         a.scaling_key is not None
@@ -617,6 +655,8 @@ def _enhancement(
         raw_percent=raw,
         shell_percent=shell,
         core_percent=core,
+        pattern_pre=pattern_pair[0] if pattern is not None else None,
+        pattern_post=pattern_pair[1] if pattern is not None else None,
     )
 
 

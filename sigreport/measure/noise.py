@@ -12,11 +12,11 @@ Method (this module's own, built on those relations):
    regions outside the reconstructed field of view or scanner masking are not Rayleigh noise).
 2. First guess: the mode of the histogram of the darker half of the voxels (the background's
    Rayleigh peak, at sigma, dominates the low end of the histogram of an image with air).
-3. Refine by a fixed-point iteration on the voxels below ``a * sigma`` (a = 3): for a Rayleigh
+3. Refine by a fixed-point iteration on the voxels below ``a * sigma`` (a = 2): for a Rayleigh
    truncated at ``a * sigma`` the second moment is
    ``E[x^2 | x < a s] = s^2 (2 - (a^2 + 2) exp(-a^2 / 2)) / (1 - exp(-a^2 / 2))``, solved for s.
 4. Accept only when the selected voxels look Rayleigh: enough of them, and their coefficient of
-   variation within a tolerance of the truncated Rayleigh's (about 0.50 at a = 3). A narrow
+   variation within a tolerance of the truncated Rayleigh's (about 0.44 at a = 2). A narrow
    tissue peak (no air in the field of view) has a much smaller CV and is rejected (None).
 """
 
@@ -26,8 +26,10 @@ import math
 
 import numpy as np
 
-#: Truncation point in units of sigma: 98.9 % of the background lies below it.
-_A = 3.0
+#: Truncation point in units of sigma: 86 % of the background lies below it. A lower point
+#: keeps dark tissue (CSF on T1, fat-suppressed fat) out of the fit; 3 sigma let it in and
+#: overestimated sigma by 60 % on a synthetic 3D fat-suppressed gradient echo.
+_A = 2.0
 
 
 def _truncated_rayleigh_moments(a: float) -> tuple[float, float]:

@@ -78,6 +78,7 @@ class QualifierThresholds:
 class EnhancementThresholds:
     enhancing_min_percent: float
     core_max_percent_for_rim: float
+    rim_max_core_to_shell: float
     solid_min_core_to_shell: float
     raw_tolerance_percent: float
 
@@ -192,8 +193,11 @@ def _check_thresholds(t: Thresholds, source: str) -> None:
             "[enhancement] raw_tolerance_percent must be >= 0",
         ),
         (
-            0.0 <= t.enhancement.solid_min_core_to_shell <= 1.0,
-            "[enhancement] solid_min_core_to_shell must be in [0, 1]",
+            0.0
+            <= t.enhancement.rim_max_core_to_shell
+            < t.enhancement.solid_min_core_to_shell
+            <= 1.0,
+            "[enhancement] needs 0 <= rim_max_core_to_shell < solid_min_core_to_shell <= 1",
         ),
         (t.reference.max_cv > 0.0, "[reference] max_cv must be > 0"),
         (t.flow_void.max_ratio > 0.0, "[flow_void] max_ratio must be > 0"),

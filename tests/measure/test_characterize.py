@@ -9,6 +9,7 @@ its signal on fat suppression; a flow void is dark on every series.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 
 import numpy as np
@@ -463,3 +464,60 @@ def test_no_reference_gives_null_ratios_and_a_warning(build, rules):
     assert got.reference is None and got.signal[T2].ratio is None and got.signal[T2].grade is None
     assert got.signal[T2].stats.median == 1800.0
     assert "no-reference" in _codes(result)
+
+
+def _thick(build, role):
+    return dataclasses.replace(build.stack(role), spacing_mm=(1.1, 1.1, 6.0))
+
+
+def test_pattern_comes_from_the_pair_with_the_finest_voxels(build, rules):
+    # On 6 mm slices the rim is averaged into the core (solid-looking); the 1 mm pair shows the
+    # rim. The percent still comes from the first pair, T1 -> T1POST (interface.md).
+    lesion = build.lesion(
+        {
+            T1: build.series(400.0, shell=400.0, core=400.0),
+            Role.T1POST: build.series(800.0, shell=820.0, core=760.0),
+            Role.T1FS: build.series(380.0, shell=380.0, core=380.0),
+            Role.T1POSTFS: build.series(700.0, shell=800.0, core=390.0),
+        }
+    )
+    ref = build.reference({T1: 600.0, Role.T1POST: 600.0, Role.T1FS: 550.0, Role.T1POSTFS: 550.0})
+    stacks = {T1: _thick(build, T1), Role.T1POST: _thick(build, Role.T1POST)}
+    result = characterize(build.study([lesion, ref], stacks=stacks), rules)
+    e = _one(result).enhancement
+    assert (e.pre, e.post) == (T1, Role.T1POST)
+    assert e.percent == pytest.approx(100.0)
+    assert (e.pattern_pre, e.pattern_post) == (Role.T1FS, Role.T1POSTFS)
+    assert e.pattern is EnhancementPattern.RIM
+    assert e.core_percent == pytest.approx(100 * (390 / 380 - 1))
+    note = next(n for n in result.qc if n.code == "enhancement-pattern-pair")
+    assert "L1" in note.message and "T1FS -> T1POSTFS" in note.message
+    # With equal voxels, the first pair gives the pattern too (solid here) and no note.
+    same = characterize(build.study([lesion, ref]), rules)
+    assert _one(same).enhancement.pattern is EnhancementPattern.SOLID
+    assert "enhancement-pattern-pair" not in _codes(same)
+
+
+@pytest.mark.parametrize(
+    ("shell", "core", "pattern"),
+    [
+        (89.0, 16.0, EnhancementPattern.RIM),  # core <= 0.25 x shell: a few % of rim in the core
+        (40.0, 16.0, EnhancementPattern.HETEROGENEOUS),  # core 0.4 x shell: neither rim nor solid
+        (40.0, 30.0, EnhancementPattern.SOLID),
+        (40.0, 10.0, EnhancementPattern.RIM),
+        (5.0, 40.0, EnhancementPattern.HETEROGENEOUS),  # centre enhancing, not the wall
+        (5.0, 3.0, EnhancementPattern.NONE),
+    ],
+)
+def test_pattern_thresholds(build, rules, shell, core, pattern):
+    # pre: everything 100 (reference 100); post: reference 100, parts raised by their percent.
+    lesion = build.lesion(
+        {
+            T1: build.series(100.0, shell=100.0, core=100.0),
+            Role.T1POST: build.series(100.0 + shell, shell=100.0 + shell, core=100.0 + core),
+        }
+    )
+    ref = build.reference({T1: 100.0, Role.T1POST: 100.0})
+    got = _one(characterize(build.study([lesion, ref]), rules))
+    assert got.enhancement.shell_percent == pytest.approx(shell)
+    assert got.enhancement.pattern is pattern

@@ -57,3 +57,16 @@ def test_zero_filled_background_gives_none():
 
 def test_too_few_voxels_gives_none():
     assert noise_sigma(np.array([1.0, 2.0, 3.0])) is None
+
+
+def test_dark_tissue_next_to_the_background_does_not_inflate_sigma():
+    # A quarter of the field is dark tissue at 4 sigma (e.g. CSF on a T1 gradient echo, or
+    # suppressed fat): its Rician values overlap the upper tail of the Rayleigh background.
+    rng = np.random.default_rng(9)
+    sigma = 10.0
+    shape = (12, 64, 64)
+    clean = np.zeros(shape)
+    clean[:, :, 24:40] = 4.0 * sigma
+    clean[:, :, 40:] = 600.0
+    image = np.abs(clean + rng.normal(0, sigma, shape) + 1j * rng.normal(0, sigma, shape))
+    assert noise_sigma(image) == pytest.approx(sigma, rel=0.05)
