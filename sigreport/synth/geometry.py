@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+from collections.abc import Iterable
 from dataclasses import dataclass
 
 import numpy as np
@@ -53,6 +54,11 @@ class SeriesGeometry:
         return img
 
 
+def _vec(values: Iterable[float] | np.ndarray) -> tuple[float, float, float]:
+    x, y, z = (float(v) for v in values)
+    return (x, y, z)
+
+
 def _rotate_x(v: tuple[float, float, float], deg: float) -> tuple[float, float, float]:
     c, s = math.cos(math.radians(deg)), math.sin(math.radians(deg))
     x, y, z = v
@@ -67,7 +73,7 @@ def plan_geometry(plan: SeriesPlan) -> SeriesGeometry:
     row, col = _AXES[plan.orientation]
     if plan.tilt_deg:
         row, col = _rotate_x(row, plan.tilt_deg), _rotate_x(col, plan.tilt_deg)
-    normal = tuple(float(v) for v in np.cross(row, col))
+    normal = _vec(np.cross(row, col))
     nx = max(1, int(round(plan.fov_mm[0] / plan.pixel_mm)))
     ny = max(1, int(round(plan.fov_mm[1] / plan.pixel_mm)))
     nz = max(1, int(math.floor(plan.fov_mm[2] / plan.spacing_mm + 1e-6)))
@@ -82,10 +88,10 @@ def plan_geometry(plan: SeriesPlan) -> SeriesGeometry:
     return SeriesGeometry(
         size=(nx, ny, nz),
         spacing=spacing,
-        origin=tuple(float(v) for v in origin),
-        row=tuple(float(v) for v in row),
-        column=tuple(float(v) for v in col),
-        normal=normal,  # type: ignore[arg-type]
+        origin=_vec(origin),
+        row=_vec(row),
+        column=_vec(col),
+        normal=normal,
         slice_thickness=plan.slice_mm,
     )
 

@@ -123,7 +123,8 @@ class Grid:
     @classmethod
     def covering(cls, low: Vec3, high: Vec3, spacing: float = 1.0) -> Grid:
         n = [int(round((h - lo) / spacing)) + 1 for lo, h in zip(low, high, strict=True)]
-        return cls(tuple(float(v) for v in low), float(spacing), (n[2], n[1], n[0]))
+        origin = (float(low[0]), float(low[1]), float(low[2]))
+        return cls(origin, float(spacing), (n[2], n[1], n[0]))
 
     def axis(self, i: int) -> np.ndarray:
         """Coordinates (mm) along patient axis ``i`` (0 = x, 1 = y, 2 = z)."""

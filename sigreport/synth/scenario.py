@@ -176,10 +176,10 @@ def _lesion(entry: dict[str, Any], where: str) -> LesionPlan:
         raise InputError(f"{where}: needs a tissue (or layers)")
     if shape == "ellipsoid":
         axes = _vec3(entry.get("semi_axes_mm"), f"{where}.semi_axes_mm")
-        solid: Solid = Ellipsoid(center, axes)
+        body: Solid = Ellipsoid(center, axes)
     else:
-        solid = Sphere(center, _positive(entry.get("radius_mm"), f"{where}.radius_mm"))
-    return LesionPlan(name, ((str(entry["tissue"]), solid),))
+        body = Sphere(center, _positive(entry.get("radius_mm"), f"{where}.radius_mm"))
+    return LesionPlan(name, ((str(entry["tissue"]), body),))
 
 
 def _roi(entry: dict[str, Any], where: str) -> RoiPlan:
@@ -201,7 +201,7 @@ def _roi(entry: dict[str, Any], where: str) -> RoiPlan:
         where,
     )
     try:
-        kind = RoiKind(entry.get("kind"))
+        kind = RoiKind(str(entry.get("kind")))
         pattern = EnhancementPattern(entry.get("pattern", "none"))
     except ValueError as exc:
         raise InputError(f"{where}: {exc}") from None
@@ -239,7 +239,7 @@ _SERIES_KEYS = {
 def _series(entry: dict[str, Any], where: str) -> SeriesPlan:
     check_keys(entry, _SERIES_KEYS, where)
     try:
-        role = Role(entry.get("role"))
+        role = Role(str(entry.get("role")))
     except ValueError:
         raise InputError(f"{where}.role: {entry.get('role')!r} is not a series role") from None
     sequence = entry.get("sequence")

@@ -113,7 +113,8 @@ def _roi_mask(grid: phantom.Grid, roi: RoiPlan) -> np.ndarray:
     """Voxels whose centre lies inside the ROI (interface.md membership rule)."""
     x, y, z = grid.points((slice(None), slice(None), slice(None)))
     c = roi.center_mm
-    axes = roi.semi_axes_mm or (roi.radius_mm,) * 3  # type: ignore[assignment]
+    r = float(roi.radius_mm or 0.0)
+    axes = roi.semi_axes_mm or (r, r, r)
     q = ((x - c[0]) / axes[0]) ** 2 + ((y - c[1]) / axes[1]) ** 2 + ((z - c[2]) / axes[2]) ** 2
     return q <= 1.0
 
@@ -136,7 +137,11 @@ def _random_motion(scn: Scenario, rng: np.random.Generator) -> Motion:
     axis = rng.normal(size=3)
     axis /= np.linalg.norm(axis)
     angle = rng.uniform(0.3, 1.0) * scn.motion_max_deg
-    return Motion(tuple(float(v) for v in t), float(angle), tuple(float(v) for v in axis))
+    return Motion(
+        (float(t[0]), float(t[1]), float(t[2])),
+        float(angle),
+        (float(axis[0]), float(axis[1]), float(axis[2])),
+    )
 
 
 def _check_scenario(scn: Scenario, table: TissueTable) -> None:

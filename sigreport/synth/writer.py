@@ -22,6 +22,7 @@ from pydicom.sequence import Sequence as DicomSequence
 from pydicom.sr.codedict import codes
 from pydicom.uid import (
     PYDICOM_IMPLEMENTATION_UID,
+    UID,
     ExplicitVRLittleEndian,
     MRImageStorage,
 )
@@ -138,8 +139,8 @@ def _common(header: StudyHeader, out: SeriesOutput, sop_class: str) -> Dataset:
 
 def _file_meta(sop_class: str, sop_instance: str) -> FileMetaDataset:
     meta = FileMetaDataset()
-    meta.MediaStorageSOPClassUID = sop_class
-    meta.MediaStorageSOPInstanceUID = sop_instance
+    meta.MediaStorageSOPClassUID = UID(sop_class)
+    meta.MediaStorageSOPInstanceUID = UID(sop_instance)
     meta.TransferSyntaxUID = ExplicitVRLittleEndian
     meta.ImplementationClassUID = PYDICOM_IMPLEMENTATION_UID
     return meta
