@@ -91,6 +91,11 @@ class SeriesPlan:
     tilt_deg: float = 0.0
     center_mm: Vec3 = (0.0, 0.0, 0.0)
     rescale: tuple[float, float] | None = None  # (slope, intercept)
+    localizer: bool = False  # ImageType LOCALIZER; role UNKNOWN, never measured
+
+    @property
+    def measured(self) -> bool:
+        return self.role is not Role.UNKNOWN
 
     @property
     def spacing_mm(self) -> float:
@@ -232,7 +237,7 @@ def _roi(entry: dict[str, Any], where: str) -> RoiPlan:
 _SERIES_KEYS = {
     "role", "number", "description", "sequence", "acquisition", "orientation", "tr_ms", "te_ms",
     "ti_ms", "flip_deg", "echo_train", "fat_sat", "contrast", "tilt_deg", "center_mm",
-    "pixel_mm", "slice_mm", "gap_mm", "fov_mm", "snr", "gain_group", "rescale",
+    "pixel_mm", "slice_mm", "gap_mm", "fov_mm", "snr", "gain_group", "rescale", "localizer",
 }  # fmt: skip
 
 
@@ -262,6 +267,8 @@ def _series(entry: dict[str, Any], where: str) -> SeriesPlan:
         ti_ms = _positive(ti, f"{where}.ti_ms")
     if sequence == "IR" and ti is None:
         raise InputError(f"{where}: an IR series needs ti_ms")
+    if (role is Role.UNKNOWN) != bool(entry.get("localizer", False)):
+        raise InputError(f"{where}: a localizer has role UNKNOWN, and only a localizer has")
     if sequence == "GRE" and entry.get("flip_deg") is None:
         raise InputError(f"{where}: a GRE series needs flip_deg")
     rescale = entry.get("rescale")
@@ -296,6 +303,7 @@ def _series(entry: dict[str, Any], where: str) -> SeriesPlan:
         tilt_deg=float(entry.get("tilt_deg", 0.0)),
         center_mm=_vec3(entry.get("center_mm", [0.0, 0.0, 0.0]), f"{where}.center_mm"),
         rescale=rescale,
+        localizer=bool(entry.get("localizer", False)),
     )
 
 
@@ -359,12 +367,14 @@ def load_scenario(path: Path | str) -> Scenario:
     for r in rois:
         if r.reference is not None and r.reference not in ids:
             raise InputError(f"{w}: ROI {r.id} names unknown reference {r.reference!r}")
+    if not any(s.measured for s in series):
+        raise InputError(f"{w}: no series to measure (only localizers)")
     try:
-        anchor = Role(data.get("anchor", series[-1].role.value))
+        anchor = Role(data.get("anchor", [s for s in series if s.measured][-1].role.value))
     except ValueError:
         raise InputError(f"{w}: anchor {data.get('anchor')!r} is not a series role") from None
-    if anchor not in roles:
-        raise InputError(f"{w}: anchor {anchor.value} is not one of the series")
+    if anchor not in roles or anchor is Role.UNKNOWN:
+        raise InputError(f"{w}: anchor {anchor.value} is not one of the measured series")
     return Scenario(
         path=path,
         name=str(data.get("name", path.stem)),

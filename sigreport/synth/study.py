@@ -323,7 +323,7 @@ def generate_study(
     anchor_plan = next(s for s in scn.series if s.role is scn.anchor)
     for plan in scn.series:
         geo = plan_geometry(plan)
-        for roi in scn.rois:
+        for roi in scn.rois if plan.measured else ():
             _check_in_view(roi, plan.role, geo)
     # Write into a hidden sibling folder and rename it at the end, so that a failure leaves no
     # half-written study behind.
@@ -385,7 +385,7 @@ def _write(
         resolved: ResolvedSeries = resolve_ti(plan, table)
         signals = tissue_signals(resolved, table, fat_sat_failed=fat_sat_failed)
         biased = model.paint(signals) * _bias_field(grid, rng_bias)
-        for roi in scn.rois:
+        for roi in scn.rois if plan.measured else ():  # localizers are never measured
             medians[roi.id][plan.role] = float(np.median(biased[masks[roi.id]]))
         geo = plan_geometry(plan)
         move = NO_MOTION

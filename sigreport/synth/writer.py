@@ -159,7 +159,7 @@ def write_classic(header: StudyHeader, out: SeriesOutput, folder: Path) -> list[
     scanning, variant, options, name = _scanning(plan)
     center, width = _window(out)
     template = _common(header, out, MRImageStorage)
-    template.ImageType = ["ORIGINAL", "PRIMARY", "OTHER"]
+    template.ImageType = ["ORIGINAL", "PRIMARY", "LOCALIZER" if plan.localizer else "OTHER"]
     template.ScanningSequence = scanning
     template.SequenceVariant = variant
     if options:
@@ -255,6 +255,11 @@ def _acquisition_contrast(plan: SeriesPlan, ti_ms: float | None) -> str:
     return "T2"
 
 
+def _enhanced_image_type(plan: SeriesPlan) -> list[str]:
+    """ImageType / FrameType of Enhanced MR (PS3.3 C.8.13.1.1.1): value 3 is the image flavor."""
+    return ["ORIGINAL", "PRIMARY", "LOCALIZER" if plan.localizer else "VOLUME", "NONE"]
+
+
 def write_enhanced(header: StudyHeader, out: SeriesOutput, path: Path) -> Path:
     """Write the series as one Enhanced MR Image Storage multi-frame file."""
     plan, geo = out.plan, out.geometry
@@ -265,7 +270,7 @@ def write_enhanced(header: StudyHeader, out: SeriesOutput, path: Path) -> Path:
     ds.ContentQualification = "PRODUCT"
     ds.AcquisitionDateTime = f"{header.study.date}{ds.AcquisitionTime}"
     # Enhanced MR Image module (PS3.3 C.8.13.1)
-    ds.ImageType = ["ORIGINAL", "PRIMARY", "VOLUME", "NONE"]
+    ds.ImageType = _enhanced_image_type(plan)
     ds.PixelPresentation = "MONOCHROME"
     ds.VolumetricProperties = "VOLUME"
     ds.VolumeBasedCalculationTechnique = "NONE"
@@ -356,7 +361,7 @@ def write_enhanced(header: StudyHeader, out: SeriesOutput, path: Path) -> Path:
     shared.MRImageFrameTypeSequence = DicomSequence(
         [
             _item(
-                FrameType=["ORIGINAL", "PRIMARY", "VOLUME", "NONE"],
+                FrameType=_enhanced_image_type(plan),
                 PixelPresentation="MONOCHROME",
                 VolumetricProperties="VOLUME",
                 VolumeBasedCalculationTechnique="NONE",

@@ -105,7 +105,7 @@ def test_scenario_errors_name_the_field(tmp_path):
     base = (demo_dir() / "neuro.toml").read_text()
     with pytest.raises(InputError, match="unknown key"):
         load_scenario(_write(tmp_path, base + "\nbogus = 1\n"))
-    with pytest.raises(InputError, match=r"series\[0\].role: 'T9' is not a series role"):
+    with pytest.raises(InputError, match=r"series\[1\].role: 'T9' is not a series role"):
         load_scenario(_write(tmp_path, base.replace('role = "T1"\n', 'role = "T9"\n', 1)))
     with pytest.raises(InputError, match="an IR series needs ti_ms"):
         load_scenario(_write(tmp_path, base.replace('ti_ms = "null:CSF"\n', "")))

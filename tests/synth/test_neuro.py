@@ -13,7 +13,7 @@ ROLES = ["T1", "T2", "FLAIR", "STIR", "T1FS", "T1POST", "T1POSTFS"]
 
 def test_pydicom_reads_every_file_as_classic_mr(neuro, tools):
     datasets = tools.read_all(neuro)
-    assert len(datasets) == sum(len(neuro.series_files(r)) for r in ROLES)
+    assert len(datasets) == sum(len(neuro.series_files(r)) for r in [*ROLES, "UNKNOWN"])
     # PS3.4: MR Image Storage; PS3.5: explicit VR little endian.
     assert {ds.SOPClassUID for ds in datasets} == {pydicom.uid.MRImageStorage}
     assert {ds.file_meta.TransferSyntaxUID for ds in datasets} == {
@@ -161,7 +161,8 @@ def test_truth_file_shape_and_flags(neuro):
     t = neuro.truth
     assert t["schema"] == "sigreport-truth/1"
     assert (t["scenario"], t["seed"], t["field_strength_t"]) == ("neuro", 7, 1.5)
-    assert set(t["series"]) == set(ROLES)
+    assert set(t["series"]) == {*ROLES, "UNKNOWN"}  # UNKNOWN: the localizer
+    assert all(set(r["ratio"]) == set(ROLES) for r in t["rois"].values())  # never measured
     assert all(m["rotation_deg"] == 0.0 for m in t["motion"].values())  # motion=False
     rois = t["rois"]
     flags = {k: rois[k]["expected"] for k in rois}
@@ -174,3 +175,10 @@ def test_truth_file_shape_and_flags(neuro):
     assert not any(flags[k]["flow_void"] for k in ["L1", "L2", "L3", "L4", "L5"])
     assert all(rois[k]["n_voxels"] >= 30 for k in rois)
     assert rois["L1"]["ratio"]["T2"] > 2.0 and rois["L1"]["ratio"]["FLAIR"] < 0.5
+
+
+def test_localizer_is_marked_as_such(neuro):
+    files = neuro.series_files("UNKNOWN")
+    ds = pydicom.dcmread(files[0], stop_before_pixels=True)
+    assert "LOCALIZER" in ds.ImageType  # PS3.3 C.8.3.1.1.1, value 3
+    assert len(files) == 3 and float(ds.SliceThickness) == 8.0

@@ -68,7 +68,9 @@ def test_motion_moves_the_anatomy_not_the_headers(tiny, tools):
 
 def test_failed_fat_saturation_leaves_fat_bright(tiny, tools, tmp_path_factory):
     # QC control: with a working fat saturation scalp fat drops; with a failed one it stays.
-    failed = tools.build(tmp_path_factory, "tiny_fsf", tools.TINY, fat_sat_failed=True, motion=False)
+    failed = tools.build(
+        tmp_path_factory, "tiny_fsf", tools.TINY, fat_sat_failed=True, motion=False
+    )
     drop_ok = tools.ratio(tiny, "T1FS", "C2") / tools.ratio(tiny, "T1", "C2")
     drop_failed = tools.ratio(failed, "T1FS", "C2") / tools.ratio(failed, "T1", "C2")
     assert drop_ok < 0.3
@@ -127,3 +129,19 @@ def test_roi_outside_its_tissue_is_refused(tmp_path, tools):
     bad.write_text(text)
     with pytest.raises(InputError, match="ROI R1 is not within white matter"):
         generate_study(bad, tmp_path / "out")
+
+
+def test_field_strength_override(tools, tmp_path_factory):
+    built = tools.build(tmp_path_factory, "tiny_3t", tools.TINY, field_strength_t=3.0, motion=False)
+    ds = pydicom.dcmread(built.series_files("T1")[0], stop_before_pixels=True)
+    assert float(ds.MagneticFieldStrength) == 3.0
+    # Larmor frequency of 1H: 42.577 MHz/T (CODATA 2018) -> 127.73 MHz at 3 T.
+    assert float(ds.ImagingFrequency) == pytest.approx(127.73, abs=0.01)
+    assert built.truth["field_strength_t"] == 3.0
+    # Longer T1 at 3 T (Stanisz 2005) changes the T1-weighted contrast: truth follows it.
+    assert (
+        built.truth["rois"]["L1"]["ratio"]
+        != tools.build(tmp_path_factory, "tiny_15t", tools.TINY, motion=False).truth["rois"]["L1"][
+            "ratio"
+        ]
+    )
