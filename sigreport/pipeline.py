@@ -47,8 +47,6 @@ ROLE_ORDER = (
 )  # fmt: skip
 # Below this confidence an inferred role is reported as doubtful in qc.
 DOUBTFUL_ROLE_CONFIDENCE = 0.6
-# How far around the ROIs (mm) the registration looks; enough anatomy for mutual information.
-REGISTRATION_MARGIN_MM = 25.0
 
 
 @dataclass(frozen=True)
@@ -285,7 +283,8 @@ def run_report(
         _say(progress, f"loading {role.value}: {_series_name(stack)}")
         images[role] = load_stack(stack)
 
-    box = _union_bounds([r.bounds_mm() for r in regions], margin=REGISTRATION_MARGIN_MM)
+    # The ROIs' box; register_rigid adds the lexicon's margin of anatomy around it.
+    box = _union_bounds([r.bounds_mm() for r in regions], margin=0.0)
     alignments: dict[Role, Alignment] = {}
     for role, stack in measured.items():
         if role is anchor_role:
@@ -342,6 +341,9 @@ def run_report(
                 image.GetSpacing(),
                 lesion=spec.kind is RoiKind.LESION,
                 min_voxels=min_voxels,
+                rules=rules,
+                roi_id=spec.id,
+                role=role,
             )
         finest = samples[(spec.id, finest_role)]
         has_voxels = finest.n_voxels > 0

@@ -50,6 +50,7 @@ class AlignmentSettings:
     learning_rate: float
     min_step: float
     max_iterations: int
+    max_samples: int
     max_translation_mm: float
     max_rotation_deg: float
     poor_metric: float
@@ -65,6 +66,7 @@ _REGISTRATION_KEYS = {
     "learning_rate",
     "min_step",
     "max_iterations",
+    "max_samples",
 }
 _QC_KEYS = {"max_translation_mm", "max_rotation_deg", "poor_metric"}
 
@@ -132,6 +134,7 @@ def load_settings(site_lexicon: Path | None = None) -> AlignmentSettings:
         learning_rate=_number(reg, "learning_rate", where),
         min_step=_number(reg, "min_step", where),
         max_iterations=_integer(reg, "max_iterations", where, minimum=1),
+        max_samples=_integer(reg, "max_samples", where, minimum=1000),
         max_translation_mm=_number(qc, "max_translation_mm", "alignment.toml [qc]"),
         max_rotation_deg=_number(qc, "max_rotation_deg", "alignment.toml [qc]"),
         poor_metric=_number(qc, "poor_metric", "alignment.toml [qc]", positive=False),
@@ -173,6 +176,46 @@ def _crop_to_box(
         [int(v) for v in (last - first + 1)],
         [int(v) for v in first],
     )
+
+
+def _smoothed(image: sitk.Image, sigma_mm: float) -> sitk.Image:
+    """Gaussian smoothing in millimetres (none for sigma 0)."""
+    if sigma_mm <= 0:
+        return image
+    # Discrete (not recursive) Gaussian: the recursive filter is inaccurate when sigma is below
+    # the voxel spacing, as it is across the slices of a thick-slice series. Axes whose spacing
+    # is much coarser than sigma are left unsmoothed.
+    variance = [
+        float(sigma_mm) ** 2 if spacing < 2.0 * sigma_mm else 0.0 for spacing in image.GetSpacing()
+    ]
+    return sitk.DiscreteGaussian(image, variance=variance, useImageSpacing=True)
+
+
+def _physical_bounds(image: sitk.Image) -> tuple[np.ndarray, np.ndarray]:
+    """The LPS box enclosing the centres of an image's corner voxels."""
+    size = np.asarray(image.GetSize())
+    corners = [
+        image.TransformIndexToPhysicalPoint(
+            (int(i * (size[0] - 1)), int(j * (size[1] - 1)), int(k * (size[2] - 1)))
+        )
+        for i in (0, 1)
+        for j in (0, 1)
+        for k in (0, 1)
+    ]
+    points = np.asarray(corners, dtype=np.float64)
+    return points.min(axis=0), points.max(axis=0)
+
+
+def _sampling_per_level(image: sitk.Image, settings: AlignmentSettings) -> list[float]:
+    """The metric's sampling fraction on each pyramid level: ``sampling_percentage``, lowered
+    where that would exceed ``max_samples`` points (a whole 1 mm head at full resolution holds
+    millions of voxels; Mattes MI needs tens of thousands of samples, not millions)."""
+    size = np.asarray(image.GetSize(), dtype=np.float64)
+    fractions = []
+    for shrink in settings.shrink_factors:
+        voxels = float(np.prod(np.maximum(np.floor(size / shrink), 1.0)))
+        fractions.append(min(settings.sampling_percentage, settings.max_samples / voxels))
+    return fractions
 
 
 def _rotation_angle_deg(matrix: np.ndarray) -> float:
@@ -245,6 +288,22 @@ def register_rigid(
                     "series; the scanner's frame of reference was kept",
                 ),
             )
+        # Keep the anchor crop inside what the moving series covers (a thick-slice 2D series
+        # often covers less than the ROIs' neighbourhood): anchor samples that land outside the
+        # moving image are dropped by the metric, and mutual information then rewards moving
+        # away from the anatomy (less overlap), which makes the optimizer diverge.
+        moving_lo, moving_hi = _physical_bounds(moving_f)
+        inset = settings.max_translation_mm
+        lo = np.maximum(lo, moving_lo + inset)
+        hi = np.minimum(hi, moving_hi - inset)
+        if np.any(hi <= lo) or (cropped := _crop_to_box(fixed_f, lo, hi, _MIN_CROP_VOXELS)) is None:
+            return Alignment(
+                method="identity",
+                warnings=(
+                    "rigid registration skipped: the series does not cover the ROIs' "
+                    "neighbourhood; the scanner's frame of reference was kept",
+                ),
+            )
         fixed_f = cropped
         # The moving series only needs to cover where the anchor crop can land after a few mm
         # of motion; cropping it keeps the pyramid's smoothing cheap on large series.
@@ -258,29 +317,50 @@ def register_rigid(
     initial = sitk.Euler3DTransform()
     initial.SetCenter(center)
 
-    reg = sitk.ImageRegistrationMethod()
-    reg.SetNumberOfThreads(_THREADS)
-    reg.SetMetricAsMattesMutualInformation(numberOfHistogramBins=settings.histogram_bins)
-    reg.SetMetricSamplingStrategy(reg.RANDOM)
-    reg.SetMetricSamplingPercentage(settings.sampling_percentage, settings.seed)
-    reg.SetInterpolator(sitk.sitkLinear)
-    reg.SetOptimizerAsRegularStepGradientDescent(
-        learningRate=settings.learning_rate,
-        minStep=settings.min_step,
-        numberOfIterations=settings.max_iterations,
-        relaxationFactor=0.5,
-        gradientMagnitudeTolerance=1e-8,
-    )
-    reg.SetOptimizerScalesFromPhysicalShift()
-    reg.SetShrinkFactorsPerLevel(list(settings.shrink_factors))
-    reg.SetSmoothingSigmasPerLevel(list(settings.smoothing_sigmas_mm))
-    reg.SmoothingSigmasAreSpecifiedInPhysicalUnitsOn()
-    reg.SetInitialTransform(initial, inPlace=False)
-
+    # A coarse-to-fine pyramid built by hand: ITK's own pyramid shrinks the moving image by
+    # the same factor as the fixed one, and a thick-slice 2D series (13 slices of 6 mm) shrunk
+    # 4x keeps 3 slices, on which the coarse level diverges. Here only the anchor is shrunk
+    # (it defines where the metric samples); the moving series is only smoothed, and is
+    # interpolated at its own resolution.
     previous_threads = sitk.ProcessObject.GetGlobalDefaultNumberOfThreads()
     sitk.ProcessObject.SetGlobalDefaultNumberOfThreads(_THREADS)
+    current: sitk.Transform = initial
     try:
-        result = reg.Execute(fixed_f, moving_f)
+        for shrink, sigma, fraction in zip(
+            settings.shrink_factors,
+            settings.smoothing_sigmas_mm,
+            _sampling_per_level(fixed_f, settings),
+            strict=True,
+        ):
+            fixed_level = _smoothed(fixed_f, sigma)
+            if shrink > 1:
+                fixed_level = sitk.BinShrink(
+                    fixed_level, [max(1, min(shrink, n // 4)) for n in fixed_level.GetSize()]
+                )
+            moving_level = _smoothed(moving_f, sigma)
+            reg = sitk.ImageRegistrationMethod()
+            reg.SetNumberOfThreads(_THREADS)
+            reg.SetMetricAsMattesMutualInformation(numberOfHistogramBins=settings.histogram_bins)
+            reg.SetMetricSamplingStrategy(reg.RANDOM)
+            # Central differences for the moving image's gradient: ITK's default gradient
+            # filter is a recursive Gaussian, inaccurate across the 5-6 mm slices of 2D series.
+            reg.SetMetricUseMovingImageGradientFilter(False)
+            reg.SetMetricSamplingPercentage(fraction, settings.seed)
+            reg.SetInterpolator(sitk.sitkLinear)
+            reg.SetOptimizerAsRegularStepGradientDescent(
+                learningRate=settings.learning_rate / shrink,
+                minStep=settings.min_step,
+                numberOfIterations=settings.max_iterations,
+                relaxationFactor=0.5,
+                gradientMagnitudeTolerance=1e-8,
+            )
+            reg.SetOptimizerScalesFromPhysicalShift()
+            reg.SetInitialTransform(current, inPlace=False)
+            result = reg.Execute(fixed_level, moving_level)
+            step = sitk.Euler3DTransform()
+            step.SetCenter(center)
+            step.SetParameters(result.GetParameters())
+            current = step
     except RuntimeError as exc:
         reason = str(exc).strip().splitlines()[-1] if str(exc).strip() else "unknown error"
         return Alignment(
@@ -291,6 +371,7 @@ def register_rigid(
         )
     finally:
         sitk.ProcessObject.SetGlobalDefaultNumberOfThreads(previous_threads)
+    result = current
 
     final = sitk.Euler3DTransform()
     final.SetCenter(center)
