@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 from sigreport.measure.rules import (
@@ -541,6 +541,23 @@ def _lesion(ctx: _Context, lesion: MeasuredRoi, ref: MeasuredRoi | None) -> Lesi
     enhancement = _enhancement(ctx, lesion, ref, ratios)
     suppression = {kind: _suppression(ctx, kind, ratios) for kind in ("fluid", "fat")}
     flow_void = _flow_void(ctx, lesion, signal)
+    if flow_void:
+        # A flow void holds no signal to compare: its percent changes are noise over noise.
+        # It is dark after contrast too (it does not enhance), and suppression is not assessable.
+        enhancement = replace(
+            enhancement,
+            enhancing=False if enhancement.percent is not None else None,
+            pattern=EnhancementPattern.NONE if enhancement.percent is not None else None,
+        )
+        suppression = {
+            kind: replace(result, suppressed=None) for kind, result in suppression.items()
+        }
+        ctx.note(
+            QcLevel.INFO,
+            "flow-void-not-assessed",
+            f"{lesion.spec.id} is a flow void (at the noise floor on every series): its "
+            "enhancement and suppression are not assessed from noise",
+        )
 
     fat = suppression["fat"]
     facts: dict[str, Any] = {role.value: s.grade for role, s in signal.items() if s is not None}

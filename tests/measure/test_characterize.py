@@ -277,6 +277,22 @@ def test_flow_void_is_dark_on_every_series_near_the_noise_floor(build, rules):
     assert 40.0 <= rules.thresholds.flow_void.noise_factor * 15.0 * math.sqrt(math.pi / 2)
 
 
+def test_a_flow_void_neither_enhances_nor_suppresses_from_noise(build, rules):
+    # Common practice: fast-flowing arterial blood is dark before and after contrast; the
+    # percent changes of two noise-floor medians say nothing about enhancement or suppression.
+    T1POST = Role.T1POST
+    lesion = build.lesion({T1: 20.0, T2: 40.0, FLAIR: 15.0, T1POST: 45.0})
+    ref = _wm(build, [T1, T2, FLAIR, T1POST])
+    noise = {T1: 15.0, T2: 15.0, FLAIR: 15.0, T1POST: 15.0}
+    result = characterize(build.study([lesion, ref], noise=noise), rules)
+    got = _one(result)
+    assert got.flow_void is True
+    assert got.enhancement.enhancing is False and got.enhancement.pattern.value == "none"
+    assert got.suppression["fluid"].suppressed is None
+    assert "flow-void-not-assessed" in _codes(result)
+    assert "rim-enhancement" not in got.behaviour and "solid-enhancement" not in got.behaviour
+
+
 def test_dark_tissue_far_above_the_noise_is_not_a_flow_void(build, rules):
     lesion = build.lesion({T1: 150.0, T2: 150.0, FLAIR: 120.0})
     study = build.study([lesion, _wm(build, [T1, T2, FLAIR])], noise={T1: 5.0, T2: 5.0, FLAIR: 5.0})
