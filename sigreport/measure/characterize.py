@@ -539,7 +539,9 @@ def _lesion(ctx: _Context, lesion: MeasuredRoi, ref: MeasuredRoi | None) -> Lesi
         )
 
     enhancement = _enhancement(ctx, lesion, ref, ratios)
-    suppression = {kind: _suppression(ctx, kind, ratios) for kind in ("fluid", "fat")}
+    suppression = {
+        kind: _suppression(ctx, kind, ratios, lesion.spec.id) for kind in ("fluid", "fat")
+    }
     flow_void = _flow_void(ctx, lesion, signal)
     if flow_void:
         # A flow void holds no signal to compare: its percent changes are noise over noise.
@@ -596,13 +598,44 @@ def _part_percent(
     return _percent_change(part_ratio(post), part_ratio(pre))
 
 
+def _lesion_pair(
+    ctx: _Context,
+    kind: str,
+    candidates: tuple[tuple[Role, Role], ...],
+    ratios: Mapping[Role, float | None],
+    lesion_id: str,
+) -> tuple[Role, Role] | None:
+    """The study's pair for ``kind``, unless this lesion cannot be measured on it (too few
+    voxels on a thick series, say) and a later pair of the same kind can: then that one, with
+    a qc note. Returns None when the study has no pair at all."""
+    pair = ctx.pairs[kind]
+    if pair is None or (ratios.get(pair[0]) is not None and ratios.get(pair[1]) is not None):
+        return pair
+    for other in candidates:
+        if (
+            other == pair
+            or other[0] not in ctx.measured.stacks
+            or other[1] not in ctx.measured.stacks
+        ):
+            continue
+        if ratios.get(other[0]) is not None and ratios.get(other[1]) is not None:
+            ctx.note(
+                QcLevel.INFO,
+                "pair-fallback",
+                f"{lesion_id}: {kind} from {other[0].value} -> {other[1].value}, since it could "
+                f"not be measured on {pair[0].value} -> {pair[1].value}",
+            )
+            return other
+    return pair
+
+
 def _enhancement(
     ctx: _Context,
     lesion: MeasuredRoi,
     ref: MeasuredRoi | None,
     ratios: Mapping[Role, float | None],
 ) -> EnhancementResult:
-    pair = ctx.pairs["enhancement"]
+    pair = _lesion_pair(ctx, "enhancement", ENHANCEMENT_PAIRS, ratios, lesion.spec.id)
     if pair is None:
         return EnhancementResult()
     pre, post = pair
@@ -678,9 +711,9 @@ def _enhancement(
 
 
 def _suppression(
-    ctx: _Context, kind: str, ratios: Mapping[Role, float | None]
+    ctx: _Context, kind: str, ratios: Mapping[Role, float | None], lesion_id: str
 ) -> SuppressionResult:
-    pair = ctx.pairs[kind]
+    pair = _lesion_pair(ctx, kind, SUPPRESSION_PAIRS[kind], ratios, lesion_id)
     if pair is None:
         return SuppressionResult(kind=kind)
     source, target = pair

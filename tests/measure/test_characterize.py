@@ -537,3 +537,16 @@ def test_pattern_thresholds(build, rules, shell, core, pattern):
     got = _one(characterize(build.study([lesion, ref]), rules))
     assert got.enhancement.shell_percent == pytest.approx(shell)
     assert got.enhancement.pattern is pattern
+
+
+def test_a_lesion_too_small_for_the_first_pair_falls_back_to_the_next(build, rules):
+    # A thin muscle holds too few voxels on thick 2D T1 slices but is measured on the 3D
+    # fat-suppressed pair: its enhancement comes from T1FS -> T1POSTFS, and qc says so.
+    T1POST, T1FS, T1POSTFS = Role.T1POST, Role.T1FS, Role.T1POSTFS
+    lesion = build.lesion({T1: None, T1POST: None, T1FS: 300.0, T1POSTFS: 600.0})
+    ref = build.reference({T1: 500.0, T1POST: 500.0, T1FS: 400.0, T1POSTFS: 400.0})
+    result = characterize(build.study([lesion, ref]), rules)
+    got = _one(result)
+    assert (got.enhancement.pre, got.enhancement.post) == (T1FS, T1POSTFS)
+    assert got.enhancement.percent == pytest.approx(100.0) and got.enhancement.enhancing is True
+    assert "pair-fallback" in _codes(result)
