@@ -245,6 +245,10 @@ class Alignment:
     metric: float | None = None
     transform: Any = None  # SimpleITK.Transform or None for identity
     warnings: tuple[str, ...] = ()
+    # The full rigid transform, so findings.json can reproduce it: an anchor point p maps to
+    # matrix (p - center_mm) + center_mm + translation_mm in this series.
+    center_mm: tuple[float, float, float] | None = None
+    matrix: tuple[float, ...] | None = None  # 3x3 row-major rotation
 
     def to_json(self) -> dict[str, Any]:
         out: dict[str, Any] = {
@@ -254,6 +258,9 @@ class Alignment:
         }
         if self.metric is not None:
             out["metric"] = round(float(self.metric), 5)
+        if self.center_mm is not None and self.matrix is not None:
+            out["center_mm"] = [round(float(v), 3) for v in self.center_mm]
+            out["matrix"] = [round(float(v), 7) for v in self.matrix]
         return out
 
 

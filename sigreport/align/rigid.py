@@ -412,4 +412,6 @@ def register_rigid(
         metric=metric,
         transform=final,
         warnings=tuple(warnings),
+        center_mm=tuple(float(v) for v in final.GetCenter()),  # type: ignore[arg-type]
+        matrix=tuple(float(v) for v in final.GetMatrix()),
     )

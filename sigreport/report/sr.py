@@ -183,7 +183,11 @@ def build_sr(
         observation_context=hd.sr.ObservationContext(observer_device_context=device),
         procedure_reported=codes.cid100.MultiparametricMRI,
         imaging_measurements=groups,
-        referenced_images=list(sources.datasets.values()),
+        # The image library (TID 1600) describes each image by its top-level geometry; an
+        # Enhanced MR multi-frame file keeps that in functional groups, which highdicom's
+        # library entry does not read, so multi-frame sources are referenced by the
+        # measurements only.
+        referenced_images=[ds for ds in sources.datasets.values() if "PixelSpacing" in ds] or None,
     )
     # The cautions (and the warnings of the run) travel with the numbers: TEXT comments on the
     # report's root container (TID 1500 is extensible).

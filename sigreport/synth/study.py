@@ -119,6 +119,23 @@ def _roi_mask(grid: phantom.Grid, roi: RoiPlan) -> np.ndarray:
     return q <= 1.0
 
 
+def _series_roi_mask(geo: SeriesGeometry, roi: RoiPlan) -> np.ndarray:
+    """Voxels of a series grid (array ``[slice, row, column]``) whose centre lies inside the
+    ROI (interface.md membership rule; PS3.3 C.7.6.2.1.1 voxel centres)."""
+    cols, rows, slices = geo.size
+    k, j, i = np.meshgrid(np.arange(slices), np.arange(rows), np.arange(cols), indexing="ij")
+    points = (
+        np.asarray(geo.origin)[None, None, None, :]
+        + (i * geo.spacing[0])[..., None] * np.asarray(geo.row)
+        + (j * geo.spacing[1])[..., None] * np.asarray(geo.column)
+        + (k * geo.spacing[2])[..., None] * np.asarray(geo.normal)
+    )
+    c = np.asarray(roi.center_mm, dtype=np.float64)
+    r = float(roi.radius_mm or 0.0)
+    axes = np.asarray(roi.semi_axes_mm or (r, r, r), dtype=np.float64)
+    return np.sum(((points - c) / axes) ** 2, axis=-1) <= 1.0
+
+
 def _bias_field(grid: phantom.Grid, rng: np.random.Generator) -> np.ndarray:
     """A smooth multiplicative receive field, within about +-10 % over the head."""
     x, y, z = grid.points((slice(None), slice(None), slice(None)))
@@ -378,6 +395,7 @@ def _write(
     study_dir.mkdir()
 
     medians: dict[str, dict[Role, float]] = {roi.id: {} for roi in scn.rois}
+    series_medians: dict[str, dict[Role, float]] = {roi.id: {} for roi in scn.rois}
     gains: dict[str, tuple[float, float, float]] = {}  # group -> gain, slope, intercept
     motions: dict[Role, Motion] = {}
     series_json: dict[str, Any] = {}
@@ -395,6 +413,16 @@ def _write(
         seen = sample(
             model_image(biased, grid), geo, None if move is NO_MOTION else move.transform()
         )
+        if plan.measured:
+            # What an ideal measurement sees on this series: the noiseless, motion-free series
+            # image (slice profile and partial volume included) over the voxels whose centres
+            # lie inside each ROI. Heterogeneous lesions (a rim around a core) have a median
+            # that depends on the slice thickness, so this is the truth for each series.
+            still = seen if move is NO_MOTION else sample(model_image(biased, grid), geo, None)
+            for roi in scn.rois:
+                inside = _series_roi_mask(geo, roi)
+                if inside.any():
+                    series_medians[roi.id][plan.role] = float(np.median(still[inside]))
         sigma = float(np.percentile(biased[head], 95)) / plan.snr
         noisy = rician(seen, sigma, rng_noise)
         if plan.gain_group not in gains:
@@ -448,6 +476,11 @@ def _write(
             for role in medians[roi.id]
         }
         expected, percents = _ratio_flags(ratio, roi, rules)
+        on_series = {
+            role: series_medians[roi.id][role] / series_medians[ref_id][role]
+            for role in series_medians[roi.id]
+            if series_medians[ref_id].get(role)
+        }
         rois_json[roi.id] = {
             "kind": roi.kind.value,
             "tissue": roi.lesion if roi.kind is RoiKind.LESION else roi.tissue,
@@ -455,6 +488,7 @@ def _write(
             "reference": ref_id,
             "n_voxels": int(masks[roi.id].sum()),
             "ratio": {role.value: round(v, 6) for role, v in ratio.items()},
+            "series_ratio": {role.value: round(v, 6) for role, v in on_series.items()},
             "expected": expected,
             **percents,
         }
