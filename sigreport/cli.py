@@ -215,7 +215,7 @@ class _progress_bar:
         self._task = self._progress.add_task("index", total=None)
 
         def update(done: int, total: int) -> None:
-            self._progress.update(self._task, completed=done, total=total)  # type: ignore[union-attr]
+            self._progress.update(self._task, completed=done, total=total)  # type: ignore[union-attr,attr-defined]
 
         return update
 

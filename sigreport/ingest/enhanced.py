@@ -242,7 +242,9 @@ def enhanced_frames(
                 scaling=frame_scaling(groups, i, ds),
                 stack_id=_str(content, "StackID"),
                 in_stack_position=_int(content, "InStackPositionNumber"),
-                spacing_between_slices=_float(pm_item, "SpacingBetweenSlices"),
+                spacing_between_slices=(
+                    _float(pm_item, "SpacingBetweenSlices") if pm_item is not None else None
+                ),
                 **common,
             )
         )

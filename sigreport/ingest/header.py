@@ -415,7 +415,11 @@ def read_dataset(path: Path) -> tuple[Dataset, str | None]:
         # pydicom warns about recoverable header oddities; the scan reports only what matters.
         warnings.simplefilter("ignore")
         try:
-            ds = pydicom.dcmread(fp, stop_before_pixels=True, specific_tags=SCAN_TAGS)
+            ds: Dataset = pydicom.dcmread(
+                fp,
+                stop_before_pixels=True,
+                specific_tags=SCAN_TAGS,  # type: ignore[arg-type]
+            )
         except InvalidDicomError:
             ds = _read_without_preamble(fp)
         except (EOFError, struct.error):
@@ -438,7 +442,12 @@ def _read_without_preamble(fp: Any) -> Dataset:
     writers omit them): accept only when the forced read yields an SOP Class UID."""
     fp.seek(0)
     try:
-        ds = pydicom.dcmread(fp, stop_before_pixels=True, force=True, specific_tags=SCAN_TAGS)
+        ds = pydicom.dcmread(
+            fp,
+            stop_before_pixels=True,
+            force=True,
+            specific_tags=SCAN_TAGS,  # type: ignore[arg-type]
+        )
         sop = ds.get("SOPClassUID")
     except Exception:  # garbage read as DICOM
         raise SkipFile("not a DICOM file (no DICM prefix)") from None
