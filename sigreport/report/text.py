@@ -138,11 +138,14 @@ def lesion_sentences(
             "from": wording.role_name(str(flag.get("from"))),
             "to": wording.role_name(str(flag.get("to"))),
             "drop": _num(flag.get("drop_percent"), 0),
+            "rise": _num(-flag["drop_percent"], 0) if flag.get("drop_percent") is not None else "",
         }
         if flag.get("drop_percent") is None or flag.get("suppressed") is None:
             out.append(fill(s["suppression_unknown"], "suppression_unknown", **values))
         else:
             key = f"{kind}_suppressed" if flag["suppressed"] else f"{kind}_not_suppressed"
+            if not flag["suppressed"] and round(float(flag["drop_percent"])) < 0:
+                key = f"{kind}_rises"
             out.append(fill(s[key], key, **values))
         if flag.get("reliable") is False:
             out.append(s["unreliable"])

@@ -36,7 +36,7 @@ _SECTIONS: dict[str, set[str]] = {
         "heading", "size", "size_volume_only", "size_unknown", "signal", "signal_first",
         "signal_separator",
         "signal_next", "signal_unmeasured", "fluid_suppressed", "fluid_not_suppressed",
-        "fat_suppressed", "fat_not_suppressed", "suppression_unknown", "unreliable",
+        "fat_suppressed", "fat_not_suppressed", "fluid_rises", "fat_rises", "suppression_unknown", "unreliable",
         "enhancing", "enhancing_no_pattern", "not_enhancing", "enhancement_unknown",
         "raw_percent", "flow_void", "no_flow_void", "behaviour",
         "behaviour_no_considerations", "list_separator", "list_last_separator",

@@ -162,3 +162,15 @@ def test_wrapping_keeps_a_number_with_its_unit():
     lines = wrap("a " * 49 + "+1 % and 5 ml y", 100).splitlines()
     assert lines[1].startswith("+1 % and 5 ml")
     assert all(len(line) <= 100 for line in lines)
+
+
+def test_a_negative_drop_reads_as_brighter_not_as_a_negative_drop(findings):
+    # A haematoma is brighter on FLAIR than on T2 relative to white matter: "signal drop -42 %"
+    # would read as a typo to a radiologist.
+    lesion = findings["lesions"][0]
+    lesion["suppression"]["fluid"].update(drop_percent=-42.0, suppressed=False)
+    context = report_context(findings, load_wording(), Phrases())
+    markdown, plain = render_text(context)
+    block = " ".join(_lesion_block(plain, lesion["id"]).split())
+    assert "relatively 42 % brighter than on T2" in block
+    assert "drop -42" not in block
