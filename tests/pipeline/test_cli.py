@@ -69,3 +69,67 @@ def test_installed_console_script_prints_its_version():
     done = subprocess.run([script, "--version"], capture_output=True, text=True, check=False)
     assert done.returncode == 0
     assert done.stdout.strip().startswith("sigreport ")
+
+
+def test_demo_builds_a_study_and_writes_the_whole_report(tmp_path: Path):
+    # The README's first quick-start command, on the small test scenario to stay quick.
+    scenario = Path(__file__).parents[1] / "synth" / "data" / "tiny.toml"
+    out = tmp_path / "demo"
+    result = runner.invoke(app, ["demo", "--scenario", str(scenario), "--out", str(out)])
+    assert result.exit_code == 0, result.output
+    html = Path(result.stdout.strip().splitlines()[-1])
+    assert html == out / "report" / "report.html" and html.is_file()
+    for name in ("findings.json", "table.csv", "report.md", "report.txt", "sr.dcm"):
+        assert (out / "report" / name).is_file(), name
+    assert any((out / "report" / "images").glob("*.png"))
+    findings = json.loads((out / "report" / "findings.json").read_text())
+    assert findings["schema"] == "sigreport-findings/1" and findings["lesions"]
+    # --force replaces it; the same run is reproducible from the same seed.
+    again = runner.invoke(app, ["demo", "--scenario", str(scenario), "--out", str(out), "--force"])
+    assert again.exit_code == 0, again.output
+    rerun = json.loads((out / "report" / "findings.json").read_text())
+    assert rerun["lesions"] == findings["lesions"]
+
+
+def test_report_refuses_an_existing_outdir_and_keeps_it(tmp_path: Path):
+    scenario = Path(__file__).parents[1] / "synth" / "data" / "tiny.toml"
+    from sigreport.synth import generate_study
+
+    study = generate_study(scenario, tmp_path / "case")
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "mine.txt").write_text("keep")
+    result = runner.invoke(
+        app, ["report", str(study.study_dir), "--case", str(study.case_path), "--out", str(out)]
+    )
+    assert result.exit_code == 2 and "--force" in result.output
+    assert (out / "mine.txt").read_text() == "keep"
+
+
+def test_report_never_writes_into_the_study(tmp_path: Path):
+    scenario = Path(__file__).parents[1] / "synth" / "data" / "tiny.toml"
+    from sigreport.synth import generate_study
+
+    study = generate_study(scenario, tmp_path / "case")
+    out = study.study_dir / "report"
+    result = runner.invoke(
+        app, ["report", str(study.study_dir), "--case", str(study.case_path), "--out", str(out)]
+    )
+    assert result.exit_code == 2 and "inside the study folder" in result.output
+    assert not out.exists()
+
+
+def test_a_bug_exits_1_and_keeps_the_traceback_in_outdir(tmp_path: Path, monkeypatch):
+    import sigreport.pipeline
+
+    def broken(*args, **kwargs):
+        raise RuntimeError("deliberate failure")
+
+    monkeypatch.setattr(sigreport.pipeline, "run_report", broken)
+    case = tmp_path / "case.toml"
+    case.write_text("")
+    out = tmp_path / "out"
+    result = runner.invoke(app, ["report", str(tmp_path), "--case", str(case), "--out", str(out)])
+    assert result.exit_code == 1
+    log = (out / "error.log").read_text()
+    assert "RuntimeError: deliberate failure" in log and "Traceback" in log
