@@ -293,26 +293,15 @@ def load_seg(path: Path, *, roi_id: str, segment: str | int | None = None) -> Gr
     labels = {
         int(item.SegmentNumber): str(item.get("SegmentLabel", "")) for item in seg.SegmentSequence
     }
-    listing = ", ".join(f"{n} {lab!r}" for n, lab in sorted(labels.items()))
-    if segment is None:
-        if len(labels) != 1:
-            raise InputError(
-                f"mask file {path}: the SEG has {len(labels)} segments ({listing}); "
-                "name one with segment = ..."
-            )
-        number = next(iter(labels))
-    elif isinstance(segment, int):
-        if segment not in labels:
-            raise InputError(f"mask file {path}: no segment number {segment}; has {listing}")
-        number = segment
-    else:
-        matches = [n for n, lab in labels.items() if lab == segment] or [
-            n for n, lab in labels.items() if lab.casefold() == segment.casefold()
-        ]
-        if len(matches) != 1:
-            problem = "no segment" if not matches else "several segments"
-            raise InputError(f"mask file {path}: {problem} labelled {segment!r}; has {listing}")
-        number = matches[0]
+    number = _pick_number(
+        labels,
+        segment,
+        f"mask file {path}",
+        many=f"the SEG has {len(labels)} segments",
+        noun=("segment", "segments"),
+        number_suffix="",
+        verb="labelled",
+    )
     try:
         volume = seg.get_volume(
             segment_numbers=[number], combine_segments=False, rescale_fractional=True
@@ -393,35 +382,17 @@ def load_rtstruct(
         for item in ds.get("ROIContourSequence", [])
         if item.get("ContourSequence")
     }
-    listing = ", ".join(
-        f"{n} {str(names[n].get('ROIName', '')) if n in names else ''!r}"
-        for n in sorted(contours_of)
-    )
     if not contours_of:
         raise InputError(f"{where}: the RTSTRUCT holds no contours")
-    if roi is None:
-        if len(contours_of) != 1:
-            raise InputError(
-                f"{where}: the RTSTRUCT has {len(contours_of)} ROIs with contours ({listing}); "
-                "name one with segment = ..."
-            )
-        number = next(iter(contours_of))
-    elif isinstance(roi, int):
-        if roi not in contours_of:
-            raise InputError(f"{where}: no ROI number {roi} with contours; has {listing}")
-        number = roi
-    else:
-        matches = [
-            n for n in contours_of if n in names and str(names[n].get("ROIName", "")) == roi
-        ] or [
-            n
-            for n in contours_of
-            if n in names and str(names[n].get("ROIName", "")).casefold() == roi.casefold()
-        ]
-        if len(matches) != 1:
-            problem = "no ROI" if not matches else "several ROIs"
-            raise InputError(f"{where}: {problem} named {roi!r}; has {listing}")
-        number = matches[0]
+    number = _pick_number(
+        {n: str(names[n].get("ROIName", "")) if n in names else "" for n in contours_of},
+        roi,
+        where,
+        many=f"the RTSTRUCT has {len(contours_of)} ROIs with contours",
+        noun=("ROI", "ROIs"),
+        number_suffix=" with contours",
+        verb="named",
+    )
 
     planar: list[PlanarContour] = []
     for k, item in enumerate(contours_of[number].ContourSequence, start=1):
@@ -485,3 +456,34 @@ def load_rtstruct(
         frame_of_reference_uid=frame,
         source=str(path),
     )
+
+
+def _pick_number(
+    labels: dict[int, str],
+    wanted: str | int | None,
+    where: str,
+    *,
+    many: str,
+    noun: tuple[str, str],
+    number_suffix: str,
+    verb: str,
+) -> int:
+    """The segment / ROI number the case file asks for: the only one when ``wanted`` is None,
+    a number, or a label (exact, else case-insensitive); an ``InputError`` listing what the
+    file holds otherwise."""
+    listing = ", ".join(f"{n} {lab!r}" for n, lab in sorted(labels.items()))
+    if wanted is None:
+        if len(labels) != 1:
+            raise InputError(f"{where}: {many} ({listing}); name one with segment = ...")
+        return next(iter(labels))
+    if isinstance(wanted, int):
+        if wanted not in labels:
+            raise InputError(f"{where}: no {noun[0]} number {wanted}{number_suffix}; has {listing}")
+        return wanted
+    matches = [n for n, lab in labels.items() if lab == wanted] or [
+        n for n, lab in labels.items() if lab.casefold() == wanted.casefold()
+    ]
+    if len(matches) != 1:
+        problem = f"no {noun[0]}" if not matches else f"several {noun[1]}"
+        raise InputError(f"{where}: {problem} {verb} {wanted!r}; has {listing}")
+    return matches[0]
