@@ -121,19 +121,32 @@ def _roi_mask(grid: phantom.Grid, roi: RoiPlan) -> np.ndarray:
 
 def _series_roi_mask(geo: SeriesGeometry, roi: RoiPlan) -> np.ndarray:
     """Voxels of a series grid (array ``[slice, row, column]``) whose centre lies inside the
-    ROI (interface.md membership rule; PS3.3 C.7.6.2.1.1 voxel centres)."""
+    ROI (interface.md membership rule; PS3.3 C.7.6.2.1.1 voxel centres). Only the index box
+    around the ROI is evaluated."""
     cols, rows, slices = geo.size
-    k, j, i = np.meshgrid(np.arange(slices), np.arange(rows), np.arange(cols), indexing="ij")
-    points = (
-        np.asarray(geo.origin)[None, None, None, :]
-        + (i * geo.spacing[0])[..., None] * np.asarray(geo.row)
-        + (j * geo.spacing[1])[..., None] * np.asarray(geo.column)
-        + (k * geo.spacing[2])[..., None] * np.asarray(geo.normal)
-    )
+    axes_dir = np.column_stack([geo.row, geo.column, geo.normal])  # orthonormal
+    spacing = np.asarray(geo.spacing, dtype=np.float64)
     c = np.asarray(roi.center_mm, dtype=np.float64)
     r = float(roi.radius_mm or 0.0)
-    axes = np.asarray(roi.semi_axes_mm or (r, r, r), dtype=np.float64)
-    return np.sum(((points - c) / axes) ** 2, axis=-1) <= 1.0
+    semi = np.asarray(roi.semi_axes_mm or (r, r, r), dtype=np.float64)
+    centre_index = axes_dir.T @ (c - np.asarray(geo.origin)) / spacing
+    reach = float(semi.max()) / spacing + 1.0
+    lo = np.maximum(np.floor(centre_index - reach), 0).astype(int)
+    hi = np.minimum(np.ceil(centre_index + reach), np.array([cols, rows, slices]) - 1).astype(int)
+    mask = np.zeros((slices, rows, cols), dtype=bool)
+    if np.any(hi < lo):
+        return mask
+    k, j, i = np.meshgrid(
+        np.arange(lo[2], hi[2] + 1),
+        np.arange(lo[1], hi[1] + 1),
+        np.arange(lo[0], hi[0] + 1),
+        indexing="ij",
+    )
+    index = np.stack([i, j, k], axis=-1) * spacing
+    points = np.asarray(geo.origin) + index @ axes_dir.T
+    inside = np.sum(((points - c) / semi) ** 2, axis=-1) <= 1.0
+    mask[lo[2] : hi[2] + 1, lo[1] : hi[1] + 1, lo[0] : hi[0] + 1] = inside
+    return mask
 
 
 def _bias_field(grid: phantom.Grid, rng: np.random.Generator) -> np.ndarray:
