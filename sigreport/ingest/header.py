@@ -21,6 +21,7 @@ from pydicom.dataelem import RawDataElement
 from pydicom.dataset import Dataset
 from pydicom.errors import InvalidDicomError
 from pydicom.uid import UID, DeflatedExplicitVRLittleEndian
+from pydicom.valuerep import PersonName
 
 from sigreport.ingest.fastheader import read_header
 from sigreport.model import Acquisition, StudyInfo
@@ -216,7 +217,7 @@ def _str(ds: Dataset, keyword: str) -> str | None:
     value = _get(ds, keyword)
     if value is None:
         return None
-    if not isinstance(value, str | bytes) and hasattr(value, "__iter__"):
+    if not isinstance(value, str | bytes | PersonName) and hasattr(value, "__iter__"):
         return "\\".join(str(v) for v in value)
     return str(value).strip() or None
 

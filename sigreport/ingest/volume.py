@@ -1,11 +1,13 @@
 """Pixels of one stack as a SimpleITK image in DICOM patient space (LPS).
 
-Pixel data are decoded by pydicom's pixel handlers, which use the pylibjpeg plugins for RLE,
+Uncompressed little-endian single-frame images are read with numpy from the Pixel Data offset
+(``read_native_frame``); everything else is decoded by pydicom's pixel handlers, which use the pylibjpeg plugins for RLE,
 JPEG lossless, JPEG-LS and JPEG 2000 (see docs/ingestion.md). Only the stack asked for is read.
 """
 
 from __future__ import annotations
 
+import os
 import warnings
 from collections import defaultdict
 from pathlib import Path
@@ -13,9 +15,11 @@ from pathlib import Path
 import numpy as np
 import pydicom
 import SimpleITK as sitk
+from pydicom.datadict import tag_for_keyword
 from pydicom.dataset import Dataset
 
 from sigreport.errors import InputError
+from sigreport.ingest.fastheader import EXPLICIT_VR_LE, IMPLICIT_VR_LE, read_header
 from sigreport.ingest.header import MULTIFRAME_CLASSES, Scaling, classic_scaling
 from sigreport.model import Stack
 
@@ -42,6 +46,73 @@ _LOAD_TAGS = [
     "FloatPixelData", "DoubleFloatPixelData", "ExtendedOffsetTable",
     "ExtendedOffsetTableLengths", "SmallestImagePixelValue", "LargestImagePixelValue",
 ]  # fmt: skip
+
+
+_LOAD_TAG_SET = frozenset(t for t in (tag_for_keyword(k) for k in _LOAD_TAGS) if t is not None)
+_NATIVE = (IMPLICIT_VR_LE, EXPLICIT_VR_LE)
+
+
+def _int_value(ds: Dataset, keyword: str) -> int | None:
+    value = ds.get(keyword)
+    return value if isinstance(value, int) else None
+
+
+def read_native_frame(path: Path) -> tuple[Dataset, np.ndarray] | None:
+    """A single-frame, uncompressed little-endian image's header and stored values, read with
+    numpy straight from the Pixel Data offset; None when the file is anything else (then
+    pydicom decodes it).
+
+    Only the plain case is taken: SamplesPerPixel 1, MONOCHROME1/2, BitsAllocated 8 or 16,
+    PixelRepresentation 0/1, HighBit = BitsStored - 1, at most one frame, and a Pixel Data
+    length of exactly Rows x Columns x bytes (plus one pad byte when odd, PS3.5 7.1.1).
+    Values above BitsStored are masked (unsigned) or sign-extended (signed) as pydicom does.
+    """
+    try:
+        with open(path, "rb") as fp, warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # odd header values: pydicom's path reports them
+            header = read_header(fp, os.fstat(fp.fileno()).st_size, _LOAD_TAG_SET)
+            if header is None or header.transfer_syntax not in _NATIVE:
+                return None
+            ds = header.dataset
+            if header.pixel_tag != 0x7FE00010 or header.pixel_value_offset is None:
+                return None
+            if str(ds.get("SOPClassUID", "")) in MULTIFRAME_CLASSES:
+                return None
+            rows, columns = _int_value(ds, "Rows"), _int_value(ds, "Columns")
+            bits, stored = _int_value(ds, "BitsAllocated"), _int_value(ds, "BitsStored")
+            high, sign = _int_value(ds, "HighBit"), _int_value(ds, "PixelRepresentation")
+            frames = ds.get("NumberOfFrames")
+            if (
+                _int_value(ds, "SamplesPerPixel") != 1
+                or ds.get("PhotometricInterpretation") not in ("MONOCHROME1", "MONOCHROME2")
+                or not rows
+                or not columns
+                or bits not in (8, 16)
+                or stored is None
+                or not 1 <= stored <= bits
+                or high != stored - 1
+                or sign not in (0, 1)
+                or (frames is not None and str(frames).strip() not in ("", "1"))
+            ):
+                return None
+            size = rows * columns * (bits // 8)
+            if header.pixel_length not in (size, size + (size % 2)):
+                return None
+            fp.seek(header.pixel_value_offset)
+            data = fp.read(size)
+    except Exception:  # odd values in the header: pydicom decides
+        return None
+    if len(data) != size:
+        return None
+    dtype = {(8, 0): "u1", (8, 1): "i1", (16, 0): "<u2", (16, 1): "<i2"}[(bits, sign)]
+    pixels = np.frombuffer(data, dtype=dtype).reshape(rows, columns)
+    if stored < bits:
+        shift = bits - stored
+        if sign:
+            pixels = (pixels << shift) >> shift  # sign-extend from bit HighBit
+        else:
+            pixels = pixels & ((1 << stored) - 1)
+    return ds, pixels
 
 
 def _read(path: Path) -> Dataset:
@@ -86,6 +157,14 @@ def load_stack(stack: Stack) -> sitk.Image:
     for k, ref in zip(indices, stack.instances, strict=True):
         by_file[ref.path].append((k, ref.frame))
     for path, targets in by_file.items():
+        if all(f is None for _, f in targets):
+            native = read_native_frame(path)
+            if native is not None:
+                ds, pixels = native
+                scaling = classic_scaling(ds)
+                for k, _ in targets:
+                    volume[k] = _apply(_check(pixels, rows, columns, path), scaling)
+                continue
         ds = _read(path)
         pixels = _pixels(ds, path)
         if str(ds.get("SOPClassUID", "")) in MULTIFRAME_CLASSES or any(
