@@ -324,9 +324,10 @@ def _read(fp: BinaryIO, file_size: int, wanted: frozenset[int]) -> FastHeader | 
                 data, at = buf.window(value_offset, length)
                 base, n = buf.base, len(data)
                 value = data[at : at + length]
-            btag = BaseTag(tag)
-            elements[btag] = RawDataElement(
-                btag, vr_text, length, value, value_offset, implicit, True
+            # Plain int keys: hash and compare as the BaseTag pydicom uses, without
+            # BaseTag.__eq__ (Python code) on every look-up by int.
+            elements[tag] = RawDataElement(  # type: ignore[index]
+                BaseTag(tag), vr_text, length, value, value_offset, implicit, True
             )
         pos = end
 

@@ -526,11 +526,10 @@ def read_frames(path: Path, *, fast: bool = True) -> list[FrameRecord]:
     modality = (_str(ds, "Modality") or "").upper()
     if not sop_class:
         raise SkipFile("no SOP Class UID (0008,0016): not a DICOM image")
-    class_name = UID(sop_class).name
     if modality and modality != "MR":
-        raise SkipFile(f"modality {modality} ({class_name}), not MR")
+        raise SkipFile(f"modality {modality} ({UID(sop_class).name}), not MR")
     if sop_class not in IMAGE_CLASSES:
-        raise SkipFile(f"{class_name} is not an MR image")
+        raise SkipFile(f"{UID(sop_class).name} is not an MR image")
     if status is not None:
         raise SkipFile(status)
     series_uid = _str(ds, "SeriesInstanceUID")
