@@ -20,7 +20,7 @@ from pydicom.dataset import Dataset
 
 from sigreport.errors import InputError
 from sigreport.ingest.fastheader import EXPLICIT_VR_LE, IMPLICIT_VR_LE, read_header
-from sigreport.ingest.header import MULTIFRAME_CLASSES, Scaling, classic_scaling
+from sigreport.ingest.header import MULTIFRAME_CLASSES, Scaling, _float, _str, classic_scaling
 from sigreport.model import Stack
 
 
@@ -53,8 +53,8 @@ _NATIVE = (IMPLICIT_VR_LE, EXPLICIT_VR_LE)
 
 
 def _int_value(ds: Dataset, keyword: str) -> int | None:
-    value = ds.get(keyword)
-    return value if isinstance(value, int) else None
+    value = _float(ds, keyword)  # the scan's raw-value decoding: no pydicom conversion
+    return int(value) if value is not None and value.is_integer() else None
 
 
 def read_native_frame(path: Path) -> tuple[Dataset, np.ndarray] | None:
@@ -76,15 +76,15 @@ def read_native_frame(path: Path) -> tuple[Dataset, np.ndarray] | None:
             ds = header.dataset
             if header.pixel_tag != 0x7FE00010 or header.pixel_value_offset is None:
                 return None
-            if str(ds.get("SOPClassUID", "")) in MULTIFRAME_CLASSES:
+            if _str(ds, "SOPClassUID") in MULTIFRAME_CLASSES:
                 return None
             rows, columns = _int_value(ds, "Rows"), _int_value(ds, "Columns")
             bits, stored = _int_value(ds, "BitsAllocated"), _int_value(ds, "BitsStored")
             high, sign = _int_value(ds, "HighBit"), _int_value(ds, "PixelRepresentation")
-            frames = ds.get("NumberOfFrames")
+            frames = _int_value(ds, "NumberOfFrames")
             if (
                 _int_value(ds, "SamplesPerPixel") != 1
-                or ds.get("PhotometricInterpretation") not in ("MONOCHROME1", "MONOCHROME2")
+                or _str(ds, "PhotometricInterpretation") not in ("MONOCHROME1", "MONOCHROME2")
                 or not rows
                 or not columns
                 or bits not in (8, 16)
@@ -92,7 +92,7 @@ def read_native_frame(path: Path) -> tuple[Dataset, np.ndarray] | None:
                 or not 1 <= stored <= bits
                 or high != stored - 1
                 or sign not in (0, 1)
-                or (frames is not None and str(frames).strip() not in ("", "1"))
+                or (ds.get_item(0x00280008) is not None and frames != 1)
             ):
                 return None
             size = rows * columns * (bits // 8)
