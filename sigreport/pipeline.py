@@ -229,7 +229,14 @@ def run_report(
     from sigreport.ingest import index_study, load_stack
     from sigreport.measure import characterize, load_rules, measure_roi, noise_sigma
     from sigreport.report import write_report
-    from sigreport.rois import build_region, load_case, max_diameter_mm, sample_region, volume_ml
+    from sigreport.rois import (
+        build_region,
+        load_case,
+        max_diameter_mm,
+        sample_region,
+        union_bounds,
+        volume_ml,
+    )
 
     case = load_case(Path(case_path))
     site = site_lexicon if site_lexicon is not None else case.lexicon
@@ -284,7 +291,7 @@ def run_report(
         images[role] = load_stack(stack)
 
     # The ROIs' box; register_rigid adds the lexicon's margin of anatomy around it.
-    box = _union_bounds([r.bounds_mm() for r in regions], margin=0.0)
+    box = union_bounds(regions)
     alignments: dict[Role, Alignment] = {}
     for role, stack in measured.items():
         if role is anchor_role:
@@ -397,14 +404,6 @@ def _inside(path: Path, folder: Path) -> bool:
     except ValueError:
         return False
     return True
-
-
-def _union_bounds(
-    bounds: Sequence[tuple[np.ndarray, np.ndarray]], *, margin: float
-) -> tuple[np.ndarray, np.ndarray]:
-    lo = np.min([np.asarray(b[0], float) for b in bounds], axis=0) - margin
-    hi = np.max([np.asarray(b[1], float) for b in bounds], axis=0) + margin
-    return lo, hi
 
 
 def _overlap_notes(case: Case, samples: Mapping[tuple[str, Role], Any], role: Role) -> list[QcNote]:
