@@ -1,6 +1,6 @@
 """Benchmark: index a ~2,000-file study and load one series, against SimpleITK (GDCM).
 
-Not run by CI. Usage: ``python tests/bench/bench_ingest.py [n_series] [slices_per_series]``.
+Not run by CI. Usage: ``PYTHONPATH=tests python tests/bench/bench_ingest.py [n_series] [slices_per_series]``.
 Prints, from one run on the same files: our index vs SimpleITK's GDCM series scan
 (GetGDCMSeriesIDs + GetGDCMSeriesFileNames per series) vs a raw read of every file's bytes; and
 loading one series with ``load_stack`` vs ``sitk.ImageSeriesReader``.
@@ -16,10 +16,9 @@ from pathlib import Path
 import numpy as np
 import SimpleITK as sitk
 
-sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "ingest"))
-from dicomfactory import write_classic_series  # noqa: E402
+from sigreport.ingest import index_study, load_stack
 
-from sigreport.ingest import index_study, load_stack  # noqa: E402
+from builders.dicom import write_classic_series
 
 
 def _timed(fn):

@@ -9,12 +9,13 @@ from pathlib import Path
 import numpy as np
 import pydicom
 import pytest
-from dicomfactory import classic_slices, save, write_classic_series
 from pydicom.data import get_testdata_file
 
 from sigreport.errors import InputError
 from sigreport.ingest import header as header_module
 from sigreport.ingest import index_study, load_stack
+
+from builders.dicom import classic_slices, save, write_classic_series
 
 
 def _stored(n: int = 3) -> np.ndarray:

@@ -8,10 +8,11 @@ import numpy as np
 import pydicom
 import pytest
 import SimpleITK as sitk
-from dicomfactory import enhanced_dataset, rotation, save
 
 from sigreport.ingest import index_study, load_stack
 from sigreport.model import Role
+
+from builders.dicom import enhanced_dataset, rotation, save
 
 
 def _stored(n: int = 4, rows: int = 5, cols: int = 6) -> np.ndarray:

@@ -19,7 +19,6 @@ import numpy as np
 import pydicom
 import pydicom.data
 import pytest
-from dicomfactory import classic_slices, save, write_classic_series
 from pydicom.dataset import Dataset
 from pydicom.sequence import Sequence as DicomSequence
 from pydicom.uid import (
@@ -33,6 +32,8 @@ from pydicom.uid import (
 from sigreport.ingest import header
 from sigreport.ingest.fastheader import read_header
 from sigreport.ingest.volume import read_native_frame
+
+from builders.dicom import classic_slices, save, write_classic_series
 
 
 def _bundled() -> list[str]:

@@ -8,9 +8,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 import SimpleITK as sitk
-from dicomfactory import AXIAL, CORONAL, SAGITTAL, rotation, write_classic_series
 
 from sigreport.ingest import index_study, load_stack
+
+from builders.dicom import AXIAL, CORONAL, SAGITTAL, rotation, write_classic_series
 
 
 def _volume(shape: tuple[int, int, int], seed: int = 1) -> np.ndarray:

@@ -6,11 +6,12 @@ import json
 from pathlib import Path
 
 import numpy as np
-from dicomfactory import CORONAL, write_classic_series
 from pydicom.uid import generate_uid
 from rich.console import Console
 
 from sigreport.ingest import index_study, print_scan_table, scan_to_json
+
+from builders.dicom import CORONAL, write_classic_series
 
 SERIES_KEYS = {  # interface.md, "scan --json"
     "series_instance_uid", "series_number", "stack", "description", "modality", "role",

@@ -7,10 +7,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 import SimpleITK as sitk
-from dicomfactory import CORONAL, classic_slices, save, write_classic_series
 from pydicom.uid import generate_uid
 
 from sigreport.ingest import index_study, load_stack
+
+from builders.dicom import CORONAL, classic_slices, save, write_classic_series
 
 
 def _stored(n: int, rows: int = 4, cols: int = 5, offset: int = 0) -> np.ndarray:

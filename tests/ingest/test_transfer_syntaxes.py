@@ -13,7 +13,6 @@ import numpy as np
 import pydicom
 import pytest
 import SimpleITK as sitk
-from dicomfactory import save, write_classic_series
 from pydicom.data import get_testdata_file
 from pydicom.uid import (
     DeflatedExplicitVRLittleEndian,
@@ -26,6 +25,8 @@ from pydicom.uid import (
 )
 
 from sigreport.ingest import index_study, load_stack
+
+from builders.dicom import save, write_classic_series
 
 BUNDLED = [
     "MR_small.dcm",

@@ -8,7 +8,7 @@ ImagePositionPatient = origin + k * spacing[2] * normal.
 
 Reusable by every stage's tests::
 
-    from dicomfactory import write_classic_series   # tests/ingest is on sys.path (conftest)
+    from builders.dicom import write_classic_series   # tests/ is on sys.path (pyproject.toml)
 """
 
 from __future__ import annotations

@@ -1,9 +1,0 @@
-"""Make tests/ingest/dicomfactory.py importable as ``dicomfactory`` (pytest runs with
-``--import-mode=importlib``, which does not put test folders on sys.path)."""
-
-import sys
-from pathlib import Path
-
-_HERE = str(Path(__file__).resolve().parent)
-if _HERE not in sys.path:
-    sys.path.insert(0, _HERE)
