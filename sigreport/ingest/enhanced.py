@@ -17,7 +17,7 @@ from pathlib import Path
 
 from pydicom.dataset import Dataset
 
-from sigreport.ingest.header import (
+from sigreport.ingest.attributes import (
     FrameRecord,
     Scaling,
     SkipFile,

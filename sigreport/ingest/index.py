@@ -9,7 +9,8 @@ from dataclasses import replace
 from pathlib import Path
 
 from sigreport.errors import InputError
-from sigreport.ingest.header import FrameRecord, SkipFile, read_frames
+from sigreport.ingest.attributes import FrameRecord, SkipFile
+from sigreport.ingest.header import read_frames
 from sigreport.ingest.roles import _infer, load_role_bands
 from sigreport.ingest.stacks import build_stacks
 from sigreport.model import SkippedFile, StudyIndex, StudyInfo

@@ -15,7 +15,7 @@ from collections.abc import Iterable
 
 import numpy as np
 
-from sigreport.ingest.header import FrameRecord
+from sigreport.ingest.attributes import FrameRecord
 from sigreport.model import InstanceRef, Stack
 
 

@@ -19,8 +19,15 @@ from pydicom.datadict import tag_for_keyword
 from pydicom.dataset import Dataset
 
 from sigreport.errors import InputError
+from sigreport.ingest.attributes import (
+    MULTIFRAME_CLASSES,
+    Scaling,
+    _float,
+    _str,
+    classic_scaling,
+)
+from sigreport.ingest.enhanced import FunctionalGroups, frame_scaling
 from sigreport.ingest.fastheader import EXPLICIT_VR_LE, IMPLICIT_VR_LE, read_header
-from sigreport.ingest.header import MULTIFRAME_CLASSES, Scaling, _float, _str, classic_scaling
 from sigreport.model import Stack
 
 
@@ -170,8 +177,6 @@ def load_stack(stack: Stack) -> sitk.Image:
         if str(ds.get("SOPClassUID", "")) in MULTIFRAME_CLASSES or any(
             f is not None for _, f in targets
         ):
-            from sigreport.ingest.enhanced import FunctionalGroups, frame_scaling
-
             groups = FunctionalGroups(ds)
             frames = pixels if pixels.ndim == 3 else pixels[np.newaxis]
             for k, frame in targets:
