@@ -87,6 +87,7 @@ class FrameRecord:
     in_stack_position: int | None = None
     spacing_between_slices: float | None = None
     warnings: tuple[str, ...] = ()
+    tile: int | None = None  # 0-based slice of a mosaic image (see mosaic.py), else None
 
 
 # --------------------------------------------------------------------------------------------
@@ -301,7 +302,52 @@ def classic_acquisition(ds: Dataset) -> Acquisition:
         slice_thickness_mm=_float(ds, "SliceThickness"),
         echo_number=_int(ds, "EchoNumbers"),
         temporal_position=_int(ds, "TemporalPositionIdentifier"),
+        **standard_contrast_fields(ds),
     )
+
+
+def standard_contrast_fields(ds: Dataset) -> dict[str, Any]:
+    """Attributes of the Enhanced MR modules that Legacy Converted and some classic images carry
+    at the top level too (PS3.3 C.8.13.1, C.8.13.4), and the acquisition times (PS3.3 C.7.6.1,
+    C.7.6.4): the keyword arguments of ``Acquisition`` they fill."""
+    return {
+        "acquisition_contrast": _upper(_str(ds, "AcquisitionContrast")),
+        "complex_image_component": _upper(_str(ds, "ComplexImageComponent")),
+        "spectrally_selected_excitation": _upper(_str(ds, "SpectrallySelectedExcitation")),
+        "diffusion_directionality": _upper(_str(ds, "DiffusionDirectionality")),
+        "acquisition_time_s": _first_not_none(
+            seconds_of_day(_str(ds, "AcquisitionTime")),
+            seconds_of_day(_str(ds, "AcquisitionDateTime")),
+        ),
+        "contrast_start_time_s": seconds_of_day(_str(ds, "ContrastBolusStartTime")),
+    }
+
+
+def _first_not_none(*values: float | None) -> float | None:
+    return next((v for v in values if v is not None), None)
+
+
+def _upper(value: str | None) -> str | None:
+    return value.strip().upper() or None if value else None
+
+
+def seconds_of_day(value: str | None) -> float | None:
+    """Seconds after midnight of a TM (HHMMSS.FFFFFF, PS3.5 6.2) or DT (YYYYMMDDHHMMSS.FFFFFF)
+    value; None when missing or malformed. A DT's date is dropped (dynamic phases are minutes
+    apart within one day)."""
+    if not value:
+        return None
+    text = value.strip().split("+")[0].split("-")[0]
+    if len(text) >= 14 and text[:8].isdigit() and "." not in text[:14]:
+        text = text[8:]  # DT: drop the date
+    whole, _, fraction = text.partition(".")
+    whole = whole.replace(":", "")  # ACR-NEMA style HH:MM:SS
+    if not whole.isdigit() or len(whole) not in (2, 4, 6) or (fraction and not fraction.isdigit()):
+        return None
+    hours, minutes, secs = int(whole[:2]), int(whole[2:4] or 0), int(whole[4:6] or 0)
+    if hours > 23 or minutes > 59 or secs > 60:
+        return None
+    return hours * 3600.0 + minutes * 60.0 + secs + (float(f"0.{fraction}") if fraction else 0.0)
 
 
 def rwvm_scaling(item: Dataset) -> Scaling | None:

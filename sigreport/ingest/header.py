@@ -42,6 +42,7 @@ from sigreport.ingest.attributes import (
 )
 from sigreport.ingest.enhanced import enhanced_frames
 from sigreport.ingest.fastheader import read_header
+from sigreport.ingest.mosaic import is_mosaic, mosaic_frames, with_csa_diffusion
 
 __all__ = [
     "ENHANCED_MR",
@@ -81,13 +82,16 @@ _SCAN_KEYWORDS = (
     "NumberOfFrames", "Rows", "Columns", "PixelSpacing", "RescaleIntercept", "RescaleSlope",
     "RealWorldValueMappingSequence", "SharedFunctionalGroupsSequence",
     "PerFrameFunctionalGroupsSequence", "BitsAllocated", "PixelRepresentation",
+    "AcquisitionContrast", "ComplexImageComponent", "SpectrallySelectedExcitation",
+    "DiffusionDirectionality", "AcquisitionTime", "AcquisitionDateTime", "ContrastBolusStartTime",
 )  # fmt: skip
-# Vendor b-value elements (see classic_b_value): private creators and elements of the first two
-# private blocks, where these vendors put them (common practice; listing every block would make
-# dcmread's per-call tag conversion dominate the scan).
+# Vendor b-value elements (see classic_b_value) and the CSA image header (0029,xx10) of mosaics
+# (mosaic.py): private creators and elements of the first two private blocks, where these
+# vendors put them (common practice; listing every block would make dcmread's per-call tag
+# conversion dominate the scan).
 _PRIVATE_TAGS = [
     (group << 16) | element
-    for group, offset in ((0x0019, 0x0C), (0x0043, 0x39), (0x2001, 0x03))
+    for group, offset in ((0x0019, 0x0C), (0x0043, 0x39), (0x2001, 0x03), (0x0029, 0x10))
     for block in (0x10, 0x11)
     for element in (block, (block << 8) | offset)
 ]
@@ -258,7 +262,10 @@ def read_frames(path: Path, *, fast: bool = True) -> list[FrameRecord]:
     sop_uid = _str(ds, "SOPInstanceUID") or f"file:{path}"
     if sop_class in MULTIFRAME_CLASSES:
         return enhanced_frames(path, ds, sop_uid, sop_class, series_uid)
-    return [classic_frame(path, ds, sop_uid, sop_class, series_uid)]
+    record = with_csa_diffusion(classic_frame(path, ds, sop_uid, sop_class, series_uid), ds)
+    if is_mosaic(record.acquisition.image_type):
+        return mosaic_frames(record, ds)
+    return [record]
 
 
 def _image_size(ds: Dataset) -> tuple[int, int]:
