@@ -617,6 +617,8 @@ def refine_roles_across_stacks(stacks: list[Stack], bands: RoleBands) -> list[St
             for a in acqs
         ) and all(out[i].size[2] <= limit_slices for i in members):
             for i in members:
+                if out[i].role == Role.UNKNOWN:
+                    continue  # already unmeasured, for its own reason
                 out[i] = replace(
                     out[i],
                     role=Role.UNKNOWN,
