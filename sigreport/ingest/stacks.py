@@ -163,6 +163,22 @@ def _series_stacks(
     return stacks
 
 
+def _single_slice_spacing(record: FrameRecord) -> tuple[float, str]:
+    """The slice spacing of a one-slice stack: SpacingBetweenSlices, else SliceThickness, else
+    1 mm. Vendors write a zero or negative SpacingBetweenSlices (some write the signed step
+    between slices; common practice): only a positive value is used, and the source says so."""
+    between = record.spacing_between_slices
+    thickness = record.acquisition.slice_thickness_mm
+    if between is not None and between > 0:
+        return between, "SpacingBetweenSlices"
+    ignored = (
+        f" (SpacingBetweenSlices {between:g} ignored: not positive)" if between is not None else ""
+    )
+    if thickness is not None and thickness > 0:
+        return thickness, "SliceThickness" + ignored
+    return 1.0, "a default of 1 mm" + ignored
+
+
 def _distinct_echo_times(frames: list[FrameRecord], *, tol_ms: float = 1e-3) -> tuple[float, ...]:
     """Every distinct echo time of a series, ascending (two or more: a multi-echo series)."""
     found: list[float] = []
@@ -309,17 +325,8 @@ def _make_stack(
                     "sheared stack); the volume geometry assumes orthogonal stacking"
                 )
     else:
-        spacing_z = first.spacing_between_slices or first.acquisition.slice_thickness_mm or 1.0
-        warnings.append(
-            f"single slice: slice spacing {spacing_z:g} mm taken from "
-            + (
-                "SpacingBetweenSlices"
-                if first.spacing_between_slices
-                else "SliceThickness"
-                if first.acquisition.slice_thickness_mm
-                else "a default of 1 mm"
-            )
-        )
+        spacing_z, source = _single_slice_spacing(first)
+        warnings.append(f"single slice: slice spacing {spacing_z:g} mm taken from {source}")
 
     scaling_keys = {r.scaling.key() for r in kept}
     scaling_key = next(iter(scaling_keys)) if len(scaling_keys) == 1 else None
