@@ -478,3 +478,39 @@ def test_twelve_bit_data_in_sixteen_bit_words(tmp_path: Path) -> None:
     values = sitk.GetArrayFromImage(load_stack(stack))
     np.testing.assert_array_equal(values, stored.astype(np.float32))
     np.testing.assert_array_equal(pydicom.dcmread(paths[0]).pixel_array, stored[0])
+
+
+@pytest.mark.parametrize(
+    ("value", "seconds"),
+    [
+        ("101530", 36930.0),  # TM HHMMSS (PS3.5 6.2)
+        ("101530.25", 36930.25),
+        ("1015", 36900.0),  # TM may stop after the minutes
+        ("20120310163520.32", 59720.32),  # DT: the date is dropped
+        ("20120310163520.32+0100", 59720.32),  # DT with a UTC offset
+        ("10:15:30", 36930.0),  # ACR-NEMA style, still written by old software
+        ("", None),
+        ("2561", None),
+        ("ab", None),
+    ],
+)
+def test_acquisition_times_in_seconds_of_day(value: str, seconds: float | None) -> None:
+    from sigreport.ingest.attributes import seconds_of_day
+
+    assert seconds_of_day(value) == (None if seconds is None else pytest.approx(seconds))
+
+
+def test_time_series_of_mosaics_splits_by_acquisition(tmp_path: Path) -> None:
+    """An fMRI-style series: one mosaic per volume, same positions, AcquisitionNumber 1, 2."""
+    uid = generate_uid()
+    for number in (1, 2):
+        ds = mosaic_dataset(_volume() + number, b_value=None, description="ep2d_bold",
+                            extra={"AcquisitionNumber": number, "SeriesInstanceUID": uid,
+                                   "ImageType": ["ORIGINAL", "PRIMARY", "M", "ND", "MOSAIC"]})  # fmt: skip
+        save(ds, tmp_path / f"vol{number}.dcm")
+    stacks = index_study(tmp_path).stacks
+    assert [s.stack for s in stacks] == ["acq 1", "acq 2"]
+    for stack, number in zip(stacks, (1, 2), strict=True):
+        assert stack.role == Role.UNKNOWN  # echo planar without diffusion: functional
+        values = sitk.GetArrayFromImage(load_stack(stack))
+        np.testing.assert_array_equal(values, (_volume() + number).astype(np.float32))
