@@ -175,9 +175,10 @@ def _fmt(value: float) -> str:
 
 
 def tokens(text: str) -> tuple[str, ...]:
-    """A description cut into upper-case tokens at every character that is not a letter, digit,
-    ``+`` or ``*``: "anat-scout" -> (ANAT, SCOUT), "AX T1+C" -> (AX, T1+C), "T2*" -> (T2*)."""
-    return tuple(w for w in re.split(r"[^A-Z0-9+*]+", text.upper()) if w)
+    """A description cut into upper-case tokens: runs of letters, digits and ``*``, and each
+    ``+`` on its own; everything else separates. "anat-scout" -> (ANAT, SCOUT),
+    "AX T1+C" -> (AX, T1, +, C), "T2*_gre" -> (T2*, GRE)."""
+    return tuple(re.findall(r"[A-Z0-9*]+|\+", text.upper()))
 
 
 def _mentions(description: str, words: frozenset[str]) -> bool:

@@ -138,6 +138,13 @@ def test_localizer_names_on_normalized_tokens(description: str) -> None:
     assert infer_role(acq(**SCOUT_3D), "t1_vibe_tra")[0] == Role.T1
 
 
+@pytest.mark.parametrize("description", ["AX T1+C", "ax t1 c+", "T1_post-contrast", "t1 +gd"])
+def test_post_contrast_spellings(description: str) -> None:
+    t1 = acq(repetition_time_ms=500, echo_time_ms=12, scanning_sequence="SE")
+    role, reason, _ = infer_role(t1, description)
+    assert role == Role.T1POST and "description says post-contrast" in reason
+
+
 def test_tokens_do_not_match_inside_words() -> None:
     # "location" and "pilots" hold no localizer token; "scoutmaster" neither.
     assert infer_role(acq(**SCOUT_3D), "location scoutmaster")[0] == Role.T1
