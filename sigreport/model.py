@@ -30,6 +30,13 @@ class Role(StrEnum):
     DWI = "DWI"
     ADC = "ADC"
     T2STAR = "T2STAR"
+    # Version 2 roles (docs/ingestion.md, Roles): gradient-echo in-phase / opposed-phase
+    # images, Dixon water / fat reconstructions, susceptibility-weighted magnitude.
+    IP = "IP"
+    OP = "OP"
+    WATER = "WATER"
+    FAT = "FAT"
+    SWI = "SWI"
     UNKNOWN = "UNKNOWN"
 
 
@@ -115,6 +122,22 @@ class Acquisition:
     slice_thickness_mm: float | None = None
     echo_number: int | None = None
     temporal_position: int | None = None
+    # Enhanced MR standard attributes (PS3.3 C.8.13.1 / C.8.13.5): AcquisitionContrast
+    # (0008,9209) e.g. "T1", "FLUID_ATTENUATED"; ComplexImageComponent (0008,9208) e.g.
+    # "MAGNITUDE", "PHASE"; SpectrallySelectedExcitation (0018,9017) e.g. "WATER" (water
+    # excitation suppresses fat); DiffusionDirectionality (0018,9075) or the vendor's
+    # equivalent: "ISOTROPIC" (trace), "DIRECTIONAL", "BMATRIX", "NONE".
+    acquisition_contrast: str | None = None
+    complex_image_component: str | None = None
+    spectrally_selected_excitation: str | None = None
+    diffusion_directionality: str | None = None
+    # Every distinct echo time of the series (ms, ascending), set when stacks are built: two
+    # or more mean a multi-echo acquisition (in-phase / opposed-phase pairs, multi-echo T2*).
+    series_echo_times_ms: tuple[float, ...] = ()
+    # Seconds after midnight: the earliest AcquisitionTime (or Enhanced MR
+    # FrameAcquisitionDateTime) of the stack's slices, and ContrastBolusStartTime (0018,1042).
+    acquisition_time_s: float | None = None
+    contrast_start_time_s: float | None = None
 
 
 @dataclass(frozen=True)
@@ -127,6 +150,7 @@ class InstanceRef:
     position_mm: tuple[float, float, float]  # ImagePositionPatient (LPS)
     frame: int | None = None  # 1-based frame number for multi-frame files, else None
     instance_number: int | None = None
+    tile: int | None = None  # 0-based slice of a mosaic image (ingest/mosaic.py), else None
 
 
 @dataclass(frozen=True)
@@ -160,6 +184,13 @@ class Stack:
     # Equal for two stacks whose stored values share one scaling to real-world values
     # (RescaleSlope/Intercept or Real World Value Mapping); None when frames differ.
     scaling_key: str | None = None
+    # Dynamic post-contrast phases (ingest/dynamic.py): stacks of one dynamic acquisition share
+    # ``dynamic_group``; ``dynamic_phase`` is 1..n by acquisition time among its post-contrast
+    # stacks and ``dynamic_delay_s`` the seconds after the first post-contrast phase (None
+    # when times are missing). All None for a stack outside a dynamic acquisition.
+    dynamic_group: str | None = None
+    dynamic_phase: int | None = None
+    dynamic_delay_s: float | None = None
 
     @property
     def voxel_volume_mm3(self) -> float:

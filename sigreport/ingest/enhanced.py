@@ -14,10 +14,11 @@ Value Transformation and Real World Value Mapping.
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Any
 
 from pydicom.dataset import Dataset
 
-from sigreport.ingest.header import (
+from sigreport.ingest.attributes import (
     FrameRecord,
     Scaling,
     SkipFile,
@@ -32,6 +33,7 @@ from sigreport.ingest.header import (
     classic_acquisition,
     common_fields,
     rwvm_scaling,
+    seconds_of_day,
 )
 from sigreport.model import Acquisition
 
@@ -165,8 +167,12 @@ def frame_acquisition(ds: Dataset, groups: FunctionalGroups, index: int) -> Acqu
         ds, "SpectrallySelectedSuppression"
     )
     image_type = _strs(frame_type, "FrameType") or base.image_type
+    # InversionTimes (0018,9079): MR Modifier macro; some writers put it in MR Timing.
     ti = _float(modifier, "InversionTimes")
+    if ti is None:
+        ti = _float(timing, "InversionTimes")
     b_value = _float(diffusion, "DiffusionBValue")
+    standard = _frame_standard_fields(ds, base, frame_type, modifier, diffusion, content)
     return Acquisition(
         repetition_time_ms=_float(timing, "RepetitionTime") or base.repetition_time_ms,
         echo_time_ms=_float(echo, "EffectiveEchoTime") or base.echo_time_ms,
@@ -187,7 +193,43 @@ def frame_acquisition(ds: Dataset, groups: FunctionalGroups, index: int) -> Acqu
         slice_thickness_mm=_float(measures, "SliceThickness") or base.slice_thickness_mm,
         echo_number=None,  # assigned per distinct echo time when stacks are built
         temporal_position=_int(content, "TemporalPositionIndex") or base.temporal_position,
+        **standard,
     )
+
+
+def _frame_standard_fields(
+    ds: Dataset,
+    base: Acquisition,
+    frame_type: Dataset,
+    modifier: Dataset,
+    diffusion: Dataset,
+    content: Dataset,
+) -> dict[str, Any]:
+    """The Enhanced MR attributes that say what a frame is, per frame over the image level:
+    AcquisitionContrast and ComplexImageComponent (MR Image Frame Type, PS3.3 C.8.13.5.1),
+    SpectrallySelectedExcitation (MR Modifier, C.8.13.5.6, or the MR Pulse Sequence module),
+    DiffusionDirectionality (MR Diffusion, C.8.13.5.9) and FrameAcquisitionDateTime (Frame
+    Content, C.7.6.16.2.2)."""
+
+    def upper(item: Dataset, keyword: str, fallback: str | None) -> str | None:
+        value = _str(item, keyword)
+        return value.strip().upper() if value and value.strip() else fallback
+
+    frame_time = seconds_of_day(_str(content, "FrameAcquisitionDateTime"))
+    return {
+        "acquisition_contrast": upper(frame_type, "AcquisitionContrast", base.acquisition_contrast),
+        "complex_image_component": upper(
+            frame_type, "ComplexImageComponent", base.complex_image_component
+        ),
+        "spectrally_selected_excitation": upper(
+            modifier, "SpectrallySelectedExcitation", base.spectrally_selected_excitation
+        ),
+        "diffusion_directionality": upper(
+            diffusion, "DiffusionDirectionality", base.diffusion_directionality
+        ),
+        "acquisition_time_s": frame_time if frame_time is not None else base.acquisition_time_s,
+        "contrast_start_time_s": base.contrast_start_time_s,
+    }
 
 
 def enhanced_frames(

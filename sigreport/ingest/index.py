@@ -9,8 +9,10 @@ from dataclasses import replace
 from pathlib import Path
 
 from sigreport.errors import InputError
-from sigreport.ingest.header import FrameRecord, SkipFile, read_frames
-from sigreport.ingest.roles import _infer, load_role_bands
+from sigreport.ingest.attributes import FrameRecord, SkipFile
+from sigreport.ingest.dynamic import assign_dynamic_phases
+from sigreport.ingest.header import read_frames
+from sigreport.ingest.roles import _infer, load_role_bands, refine_roles_across_stacks
 from sigreport.ingest.stacks import build_stacks
 from sigreport.model import SkippedFile, StudyIndex, StudyInfo
 
@@ -74,6 +76,7 @@ def index_study(
     for stack in build_stacks(records):
         role, reason, confidence = _infer(stack.acquisition, stack.description, bands)
         stacks.append(replace(stack, role=role, role_reason=reason, confidence=confidence))
+    stacks = assign_dynamic_phases(refine_roles_across_stacks(stacks, bands))
 
     warnings: list[str] = []
     study_uids = Counter(r.study.study_instance_uid for r in records)

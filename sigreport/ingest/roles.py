@@ -9,13 +9,13 @@ between roles the physics allows. Every band is data in ``lexicon/roles.toml``.
 from __future__ import annotations
 
 import re
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
 from sigreport.errors import InputError
 from sigreport.lexicon import check_keys, find_file, read_table
-from sigreport.model import Acquisition, Role
+from sigreport.model import Acquisition, Role, Stack
 
 LEXICON_FILE = "roles.toml"
 
@@ -41,13 +41,22 @@ _SCHEMA: dict[str, dict[str, str]] = {
         "flair_te_ms": "band",
         "t1_prep_te_ms": "band",
     },
-    "diffusion": {"dwi_min_b": "number"},
-    "scan_options": {"fat_suppression": "words", "fat_suppression_enhanced": "words"},
+    "diffusion": {"dwi_min_b": "number", "directional": "words"},
+    "scan_options": {
+        "fat_suppression": "words",
+        "fat_suppression_enhanced": "words",
+        "fat_excitation_enhanced": "words",
+    },
     "image_type": {
         "adc": "words",
         "unmeasurable": "words",
         "diffusion": "words",
         "localizer": "words",
+        "water": "words",
+        "fat": "words",
+        "in_phase": "words",
+        "opposed_phase": "words",
+        "swi": "words",
     },
     "description": {
         "localizer": "words",
@@ -58,7 +67,32 @@ _SCHEMA: dict[str, dict[str, str]] = {
         "T2": "words",
         "PD": "words",
         "FLAIR": "words",
+        "STIR": "words",
         "T2STAR": "words",
+        "SWI": "words",
+        "ADC": "words",
+    },
+    "enhanced": {
+        "T1": "words",
+        "T2": "words",
+        "PD": "words",
+        "FLAIR": "words",
+        "STIR": "words",
+        "T2STAR": "words",
+        "diffusion": "words",
+        "unmeasurable": "words",
+        "not_magnitude": "words",
+    },
+    "chemical_shift": {
+        "fat_water_shift_ppm": "number",
+        "gyromagnetic_mhz_per_t": "number",
+        "phase_tolerance_cycles": "number",
+    },
+    "localizer": {
+        "max_tr_ms": "number",
+        "max_te_ms": "number",
+        "max_slices_per_plane": "number",
+        "min_planes": "number",
     },
     "confidence": {
         "clean": "unit",
@@ -140,14 +174,25 @@ def _fmt(value: float) -> str:
     return f"{value:.0f}" if abs(value) >= 10 else f"{value:.3g}"
 
 
-def _words(text: str) -> set[str]:
-    """Whole words of a description (keeping ``+``, ``*`` and ``-`` inside words)."""
-    return {w for w in re.split(r"[\s_/\\,;:()\[\]]+", text.upper()) if w}
+def tokens(text: str) -> tuple[str, ...]:
+    """A description cut into upper-case tokens: runs of letters, digits and ``*``, and each
+    ``+`` on its own; everything else separates. "anat-scout" -> (ANAT, SCOUT),
+    "AX T1+C" -> (AX, T1, +, C), "T2*_gre" -> (T2*, GRE)."""
+    return tuple(re.findall(r"[A-Z0-9*]+|\+", text.upper()))
 
 
 def _mentions(description: str, words: frozenset[str]) -> bool:
-    found = _words(description)
-    return any(w in found for w in words)
+    """True when the description holds one of ``words``, each matched as its own token run
+    (an entry of several tokens, such as "3-plane", matches those tokens in a row)."""
+    found = tokens(description)
+    if not found:
+        return False
+    for word in words:
+        wanted = tokens(word)
+        n = len(wanted)
+        if n and any(found[i : i + n] == wanted for i in range(len(found) - n + 1)):
+            return True
+    return False
 
 
 @dataclass(frozen=True)
@@ -156,6 +201,7 @@ class _Evidence:
     inversion: bool
     fat_sat: bool
     contrast: bool
+    fat_sat_reason: str = ""  # e.g. "fat saturation", "water excitation (fat suppressed)"
 
 
 def infer_role(
@@ -186,39 +232,85 @@ def infer_role(
 
 
 def _infer(acq: Acquisition, description: str, b: RoleBands) -> tuple[Role, str, float]:
+    """The order of decisions (docs/ingestion.md, Roles): what the image is (localizer, screen
+    capture, non-magnitude, Dixon / chemical-shift / SWI / ADC / derived ImageType values) ->
+    Enhanced MR AcquisitionContrast -> diffusion -> physics (TR, TE, TI, flip, sequence) ->
+    description as a tie-break -> fat suppression and contrast modifiers."""
     conf_clean = b.number("confidence", "clean")
     conf_partial = b.number("confidence", "partial")
     conf_tie = b.number("confidence", "tie_break")
     image_type = {t.upper() for t in acq.image_type}
+    # Values 3 on of ImageType / FrameType name the image's flavour (PS3.3 C.7.6.1.1.2,
+    # C.8.16.1); values 1-2 are ORIGINAL/DERIVED and PRIMARY/SECONDARY.
+    flavour = {t.upper() for t in acq.image_type[2:]}
+    shown = "\\".join(acq.image_type)
 
-    # Localizers and screen captures first: never measured (interface.md).
+    # Localizers and screen captures first: never measured (docs/usage.md).
     if image_type & b.words("image_type", "localizer") or _mentions(
         description, b.words("description", "localizer")
     ):
         return Role.UNKNOWN, "localizer (ImageType or series description)", conf_clean
     if _mentions(description, b.words("description", "screen_capture")):
         return Role.UNKNOWN, f"screen capture or report (description {description!r})", conf_clean
+    component = (acq.complex_image_component or "").upper()
+    if component in b.words("enhanced", "not_magnitude"):
+        return Role.UNKNOWN, f"ComplexImageComponent {component}: not a magnitude image", conf_clean
 
-    # Diffusion-derived maps: ADC is a role, other derived images are not.
+    # What the image is, by its ImageType values (before the derived rule: Dixon, SWI and ADC
+    # images are often DERIVED).
     if image_type & b.words("image_type", "adc"):
-        shown = "\\".join(acq.image_type)
         return Role.ADC, f"ADC map (ImageType {shown})", conf_clean
-    diffusion_type = bool(image_type & b.words("image_type", "diffusion"))
     unmeasurable = image_type & b.words("image_type", "unmeasurable")
     if unmeasurable:
         kinds = ", ".join(sorted(unmeasurable))
         return Role.UNKNOWN, f"derived or non-magnitude image (ImageType {kinds})", conf_clean
+    for key, role in (
+        ("water", Role.WATER),
+        ("fat", Role.FAT),
+        ("in_phase", Role.IP),
+        ("opposed_phase", Role.OP),
+        ("swi", Role.SWI),
+    ):
+        if flavour & b.words("image_type", key):
+            return role, f"{_ROLE_NAMES[role]} (ImageType {shown})", conf_clean
+    diffusion_type = bool(image_type & b.words("image_type", "diffusion"))
     if "DERIVED" in image_type and not diffusion_type:
+        if _evidence(acq, b).family == "echo planar" and _mentions(
+            description, b.words("description", "ADC")
+        ):
+            return (
+                Role.ADC,
+                f"derived echo planar image without ADC in ImageType ({shown}); ADC by description",
+                conf_tie,
+            )
         return Role.UNKNOWN, "derived image that is not an ADC map or diffusion trace", conf_clean
+
+    # The Enhanced MR AcquisitionContrast (standard attribute) names the intended weighting.
+    stated = _stated_contrast(acq, b)
+    if stated == "unmeasurable":
+        return (
+            Role.UNKNOWN,
+            f"AcquisitionContrast {acq.acquisition_contrast}: no measurable role",
+            conf_clean,
+        )
 
     ev = _evidence(acq, b)
     dwi_min_b = b.number("diffusion", "dwi_min_b")
     bval = acq.b_value
+    directionality = (acq.diffusion_directionality or "").upper()
+    diffusion_stated = diffusion_type or stated == "diffusion"
     if bval is not None and bval >= dwi_min_b:
+        if directionality in b.words("diffusion", "directional"):
+            return (
+                Role.UNKNOWN,
+                f"b {_fmt(bval)} s/mm2, one diffusion direction (DiffusionDirectionality "
+                f"{directionality}): not a trace",
+                conf_clean,
+            )
         return Role.DWI, f"diffusion weighted, b {_fmt(bval)} s/mm2 ({ev.family})", conf_clean
-    if diffusion_type and bval is None:
+    if diffusion_stated and bval is None:
         return Role.DWI, "diffusion image (ImageType), b-value not in header", conf_partial
-    if bval is not None and (diffusion_type or ev.family == "echo planar"):
+    if bval is not None and (diffusion_stated or ev.family == "echo planar"):
         return (
             Role.UNKNOWN,
             f"b {_fmt(bval)} s/mm2 diffusion reference image (below b {_fmt(dwi_min_b)})",
@@ -243,33 +335,64 @@ def _infer(acq: Acquisition, description: str, b: RoleBands) -> tuple[Role, str,
         parts.append("no inversion")
     if ev.family == "gradient echo" and acq.flip_angle_deg is not None:
         parts.append(f"flip {_fmt(acq.flip_angle_deg)} deg")
-    parts.append("fat saturation" if ev.fat_sat else "no fat saturation")
+    parts.append(ev.fat_sat_reason or "no fat saturation")
     if ev.contrast:
         parts.append(f"contrast {acq.contrast_agent}")
     physics = ", ".join(parts)
 
+    stated_role = _STATED_ROLES.get(stated or "")
     if te is None or (tr is None and not ev.inversion):
-        return Role.UNKNOWN, f"{physics}: TR/TE missing from the header", conf_clean
-
-    candidates, note = _candidates(acq, ev, b)
+        if stated_role is None:
+            return Role.UNKNOWN, f"{physics}: TR/TE missing from the header", conf_clean
+        candidates, note = [stated_role], "TR/TE missing from the header"
+    else:
+        candidates, note = _candidates(acq, ev, b)
+    confidence = conf_clean if not note else conf_partial
+    if stated_role is not None:
+        # The standard attribute decides over the physics; the physics is reported beside it.
+        if stated_role in candidates:
+            physics += f"; AcquisitionContrast {acq.acquisition_contrast}"
+        else:
+            alone = " or ".join(r.value for r in candidates) if candidates else note
+            physics += f"; AcquisitionContrast {acq.acquisition_contrast} (physics alone: {alone})"
+            confidence = conf_partial
+        candidates, note = [stated_role], ""
     if not candidates:
         return Role.UNKNOWN, f"{physics}: {note}", conf_clean
-    confidence = conf_clean if not note else conf_partial
-    if ev.family == "unknown sequence":
+    if ev.family == "unknown sequence" and stated_role is None:
         confidence *= b.number("confidence", "unknown_sequence_factor")
     if len(candidates) > 1:
         chosen = [r for r in candidates if _mentions(description, b.words("description", r.value))]
         names = " or ".join(r.value for r in candidates)
         if len(chosen) != 1:
-            return Role.UNKNOWN, f"{physics}: ambiguous between {names}", conf_clean
+            why = f" ({note})" if note else ""
+            return Role.UNKNOWN, f"{physics}: ambiguous between {names}{why}", conf_clean
         role = chosen[0]
         physics += f"; {names} by physics, {role.value} by description"
+        if note:
+            physics += f" ({note})"
         confidence = min(confidence, conf_tie)
     else:
         role = candidates[0]
         if note:
             physics += f" ({note})"
 
+    if role == Role.T2STAR and _mentions(description, b.words("description", "SWI")):
+        role = Role.SWI
+        physics += "; susceptibility weighted by description"
+        confidence = min(confidence, conf_tie)
+    if role == Role.T1 and ev.family == "gradient echo" and not ev.inversion:
+        shifted = _chemical_shift_phase(acq, b)
+        if shifted is not None:
+            role, why = shifted
+            return role, f"{physics}; {why}", round(float(confidence), 3)
+        if len(acq.series_echo_times_ms) >= 2:
+            return (
+                Role.UNKNOWN,
+                f"{physics}: multi-echo gradient echo whose echo is neither in phase nor opposed "
+                f"phase at the header's field strength ({acq.magnetic_field_strength_t} T)",
+                conf_clean,
+            )
     if role == Role.PD and ev.fat_sat:
         return (
             Role.UNKNOWN,
@@ -294,6 +417,61 @@ def _infer(acq: Acquisition, description: str, b: RoleBands) -> tuple[Role, str,
     return role, physics, round(float(confidence), 3)
 
 
+_ROLE_NAMES = {
+    Role.WATER: "Dixon water image",
+    Role.FAT: "Dixon fat image",
+    Role.IP: "in-phase image",
+    Role.OP: "opposed-phase image",
+    Role.SWI: "susceptibility-weighted image",
+}
+_STATED_ROLES = {
+    "T1": Role.T1,
+    "T2": Role.T2,
+    "PD": Role.PD,
+    "FLAIR": Role.FLAIR,
+    "STIR": Role.STIR,
+    "T2STAR": Role.T2STAR,
+}
+
+
+def _stated_contrast(acq: Acquisition, b: RoleBands) -> str | None:
+    """The role key AcquisitionContrast (0008,9209) names: "T1", "T2", "PD", "FLAIR", "STIR",
+    "T2STAR", "diffusion", "unmeasurable", or None (absent, MIXED, UNKNOWN)."""
+    value = (acq.acquisition_contrast or "").upper()
+    if not value:
+        return None
+    for key in ("T1", "T2", "PD", "FLAIR", "STIR", "T2STAR", "diffusion", "unmeasurable"):
+        if value in b.words("enhanced", key):
+            return key
+    return None
+
+
+def _chemical_shift_phase(acq: Acquisition, b: RoleBands) -> tuple[Role, str] | None:
+    """IP or OP for one echo of a multi-echo short-TR gradient echo, from where its TE falls in
+    the fat-water precession cycle at the series' field strength (lexicon [chemical_shift]);
+    None for a single-echo series, a missing field strength or a TE between the phases."""
+    te, field = acq.echo_time_ms, acq.magnetic_field_strength_t
+    if len(acq.series_echo_times_ms) < 2 or te is None or not field:
+        return None
+    shift_hz = (
+        b.number("chemical_shift", "fat_water_shift_ppm")
+        * b.number("chemical_shift", "gyromagnetic_mhz_per_t")
+        * field
+    )  # ppm x MHz = Hz
+    cycles = te * 1e-3 * shift_hz
+    tol = b.number("chemical_shift", "phase_tolerance_cycles")
+    fraction = cycles - int(cycles)
+    period = 1000.0 / shift_hz
+    where = (
+        f"TE {_fmt(te)} ms = {cycles:.2f} fat-water cycles at {field:g} T (period {period:.2f} ms)"
+    )
+    if min(fraction, 1.0 - fraction) <= tol and cycles >= 0.5:
+        return Role.IP, f"multi-echo, in phase: {where}"
+    if abs(fraction - 0.5) <= tol:
+        return Role.OP, f"multi-echo, opposed phase: {where}"
+    return None
+
+
 def _evidence(acq: Acquisition, b: RoleBands) -> _Evidence:
     seq = {s.upper() for s in acq.scanning_sequence}
     pulse = (acq.echo_pulse_sequence or "").upper()
@@ -315,13 +493,25 @@ def _evidence(acq: Acquisition, b: RoleBands) -> _Evidence:
     else:
         inversion = ti is not None and ti > 0
     options = {o.upper() for o in acq.scan_options}
-    fat_sat = bool(options & b.words("scan_options", "fat_suppression")) or (
-        (acq.spectrally_selected_suppression or "").upper()
-        in b.words("scan_options", "fat_suppression_enhanced")
-    )
+    reason = ""
+    suppression = (acq.spectrally_selected_suppression or "").upper()
+    if suppression in b.words("scan_options", "fat_suppression_enhanced"):
+        reason = f"fat saturation (SpectrallySelectedSuppression {suppression})"
+    elif (acq.spectrally_selected_excitation or "").upper() in b.words(
+        "scan_options", "fat_excitation_enhanced"
+    ):
+        reason = "water excitation (fat suppressed)"
+    elif options & b.words("scan_options", "fat_suppression"):
+        reason = "fat saturation"
     agent = (acq.contrast_agent or "").strip().upper()
     contrast = bool(agent) and agent not in ("NONE", "NO", "N/A", "NA")
-    return _Evidence(family=family, inversion=inversion, fat_sat=fat_sat, contrast=contrast)
+    return _Evidence(
+        family=family,
+        inversion=inversion,
+        fat_sat=bool(reason),
+        contrast=contrast,
+        fat_sat_reason=reason,
+    )
 
 
 def _candidates(acq: Acquisition, ev: _Evidence, b: RoleBands) -> tuple[list[Role], str]:
@@ -335,7 +525,10 @@ def _candidates(acq: Acquisition, ev: _Evidence, b: RoleBands) -> tuple[list[Rol
     assert te is not None
     if ev.inversion:
         if ti is None or ti <= 0:
-            return [], "inversion recovery without an inversion time"
+            # Private or missing TI (vendor quirk): the TE narrows it, the description decides.
+            if _in(te, b.band("inversion", "flair_te_ms")):
+                return [Role.FLAIR, Role.STIR], "inversion time not in the header"
+            return [Role.STIR, Role.T1], "inversion time not in the header"
         if _in(ti, b.band("inversion", "stir_ti_ms")):
             return [Role.STIR], ""  # fat null: STIR suppresses fat by itself
         if _in(ti, b.band("inversion", "flair_ti_ms")):
@@ -392,3 +585,72 @@ def _candidates(acq: Acquisition, ev: _Evidence, b: RoleBands) -> tuple[list[Rol
     if short_tr:
         return [], "TE between the T1 and T2 bands with a short TR"
     return [Role.T1, Role.PD, Role.T2], ""
+
+
+def refine_roles_across_stacks(stacks: list[Stack], bands: RoleBands) -> list[Stack]:
+    """Decisions that need more than one stack, applied after each stack's own inference.
+
+    - A series whose stacks lie in ``min_planes`` or more planes, each with at most
+      ``max_slices_per_plane`` slices, at a TR and TE at or below the lexicon's localizer limits
+      is a (three-plane) localizer, whatever its description says: UNKNOWN.
+    - DWI is the highest-b trace of the study: a trace of lower b is UNKNOWN, its reason naming
+      the b-value kept (docs/ingestion.md, Roles).
+    """
+    out = list(stacks)
+    conf_clean = bands.number("confidence", "clean")
+    by_series: dict[str, list[int]] = {}
+    for i, stack in enumerate(out):
+        by_series.setdefault(stack.series_instance_uid, []).append(i)
+    limit_tr = bands.number("localizer", "max_tr_ms")
+    limit_te = bands.number("localizer", "max_te_ms")
+    limit_slices = bands.number("localizer", "max_slices_per_plane")
+    min_planes = bands.number("localizer", "min_planes")
+    for members in by_series.values():
+        planes = {_plane(out[i]) for i in members}
+        if len(planes) < min_planes:
+            continue
+        acqs = [out[i].acquisition for i in members]
+        if all(
+            a.repetition_time_ms is not None
+            and a.repetition_time_ms <= limit_tr
+            and a.echo_time_ms is not None
+            and a.echo_time_ms <= limit_te
+            for a in acqs
+        ) and all(out[i].size[2] <= limit_slices for i in members):
+            for i in members:
+                if out[i].role == Role.UNKNOWN:
+                    continue  # already unmeasured, for its own reason
+                out[i] = replace(
+                    out[i],
+                    role=Role.UNKNOWN,
+                    role_reason=(
+                        f"localizer: slices in {len(planes)} planes, at most "
+                        f"{max(out[j].size[2] for j in members)} per plane, TR "
+                        f"{_fmt(acqs[0].repetition_time_ms or 0)} ms, TE "
+                        f"{_fmt(acqs[0].echo_time_ms or 0)} ms"
+                    ),
+                    confidence=conf_clean,
+                )
+    traces = [i for i, s in enumerate(out) if s.role == Role.DWI and s.acquisition.b_value]
+    if traces:
+        highest = max(out[i].acquisition.b_value or 0.0 for i in traces)
+        for i in traces:
+            bval = out[i].acquisition.b_value or 0.0
+            if bval < highest:
+                out[i] = replace(
+                    out[i],
+                    role=Role.UNKNOWN,
+                    role_reason=(
+                        f"diffusion trace b {_fmt(bval)} s/mm2: DWI is the study's highest-b "
+                        f"trace (b {_fmt(highest)})"
+                    ),
+                    confidence=conf_clean,
+                )
+    return out
+
+
+def _plane(stack: Stack) -> int:
+    """The patient axis (0 x, 1 y, 2 z) nearest the stack's slice normal."""
+    d = stack.direction  # row-major 3x3, the normal is the third column
+    normal = (abs(d[2]), abs(d[5]), abs(d[8]))
+    return max(range(3), key=lambda k: normal[k])

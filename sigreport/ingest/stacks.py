@@ -15,7 +15,7 @@ from collections.abc import Iterable
 
 import numpy as np
 
-from sigreport.ingest.header import FrameRecord
+from sigreport.ingest.attributes import FrameRecord
 from sigreport.model import InstanceRef, Stack
 
 
@@ -144,6 +144,7 @@ def _series_stacks(
 
     keys = sorted(refined, key=_sortable)
     names = _stack_names(keys, refined, orientations)
+    series_echo_times = _distinct_echo_times(frames)
     stacks = []
     for key in keys:
         stack_name = names[key] if len(keys) > 1 else None
@@ -153,12 +154,38 @@ def _series_stacks(
                 stack_name,
                 refined[key],
                 echo_index=_echo_index(key),
+                series_echo_times=series_echo_times,
                 spacing_rtol=spacing_rtol,
                 position_tol_mm=position_tol_mm,
                 tilt_tol_deg=tilt_tol_deg,
             )
         )
     return stacks
+
+
+def _single_slice_spacing(record: FrameRecord) -> tuple[float, str]:
+    """The slice spacing of a one-slice stack: SpacingBetweenSlices, else SliceThickness, else
+    1 mm. Vendors write a zero or negative SpacingBetweenSlices (some write the signed step
+    between slices; common practice): only a positive value is used, and the source says so."""
+    between = record.spacing_between_slices
+    thickness = record.acquisition.slice_thickness_mm
+    if between is not None and between > 0:
+        return between, "SpacingBetweenSlices"
+    ignored = (
+        f" (SpacingBetweenSlices {between:g} ignored: not positive)" if between is not None else ""
+    )
+    if thickness is not None and thickness > 0:
+        return thickness, "SliceThickness" + ignored
+    return 1.0, "a default of 1 mm" + ignored
+
+
+def _distinct_echo_times(frames: list[FrameRecord], *, tol_ms: float = 1e-3) -> tuple[float, ...]:
+    """Every distinct echo time of a series, ascending (two or more: a multi-echo series)."""
+    found: list[float] = []
+    for te in sorted(r.acquisition.echo_time_ms for r in frames if r.acquisition.echo_time_ms):
+        if not found or te - found[-1] > tol_ms:
+            found.append(float(te))
+    return tuple(found)
 
 
 def _echo_index(key: tuple[object, ...]) -> int | None:
@@ -220,6 +247,7 @@ def _make_stack(
     members: list[FrameRecord],
     *,
     echo_index: int | None,
+    series_echo_times: tuple[float, ...] = (),
     spacing_rtol: float,
     position_tol_mm: float,
     tilt_tol_deg: float,
@@ -245,7 +273,7 @@ def _make_stack(
 
     ordered = sorted(
         members,
-        key=lambda r: (along(r), r.instance_number or 0, r.frame or 0, str(r.path)),
+        key=lambda r: (along(r), r.instance_number or 0, r.frame or 0, r.tile or 0, str(r.path)),
     )
     kept: list[FrameRecord] = []
     duplicates = 0
@@ -297,17 +325,8 @@ def _make_stack(
                     "sheared stack); the volume geometry assumes orthogonal stacking"
                 )
     else:
-        spacing_z = first.spacing_between_slices or first.acquisition.slice_thickness_mm or 1.0
-        warnings.append(
-            f"single slice: slice spacing {spacing_z:g} mm taken from "
-            + (
-                "SpacingBetweenSlices"
-                if first.spacing_between_slices
-                else "SliceThickness"
-                if first.acquisition.slice_thickness_mm
-                else "a default of 1 mm"
-            )
-        )
+        spacing_z, source = _single_slice_spacing(first)
+        warnings.append(f"single slice: slice spacing {spacing_z:g} mm taken from {source}")
 
     scaling_keys = {r.scaling.key() for r in kept}
     scaling_key = next(iter(scaling_keys)) if len(scaling_keys) == 1 else None
@@ -317,6 +336,12 @@ def _make_stack(
     acquisition = first.acquisition
     if echo_index is not None and acquisition.echo_number is None:
         acquisition = replace(acquisition, echo_number=echo_index)
+    times = [r.acquisition.acquisition_time_s for r in kept]
+    acquisition = replace(
+        acquisition,
+        series_echo_times_ms=series_echo_times,
+        acquisition_time_s=min((s for s in times if s is not None), default=None),
+    )
     sources = {r.series_number for r in kept}
     if len(sources) > 1:
         warnings.append(f"instances carry different SeriesNumbers {sorted(map(str, sources))}")
@@ -333,6 +358,7 @@ def _make_stack(
             position_mm=tuple(float(v) for v in r.position),  # type: ignore[arg-type]
             frame=r.frame,
             instance_number=r.instance_number,
+            tile=r.tile,
         )
         for r in kept
     )

@@ -19,8 +19,16 @@ from pydicom.datadict import tag_for_keyword
 from pydicom.dataset import Dataset
 
 from sigreport.errors import InputError
+from sigreport.ingest.attributes import (
+    MULTIFRAME_CLASSES,
+    Scaling,
+    _float,
+    _str,
+    classic_scaling,
+)
+from sigreport.ingest.enhanced import FunctionalGroups, frame_scaling
 from sigreport.ingest.fastheader import EXPLICIT_VR_LE, IMPLICIT_VR_LE, read_header
-from sigreport.ingest.header import MULTIFRAME_CLASSES, Scaling, _float, _str, classic_scaling
+from sigreport.ingest.mosaic import cut_tile
 from sigreport.model import Stack
 
 
@@ -154,8 +162,14 @@ def load_stack(stack: Stack) -> sitk.Image:
     indices = _slice_indices(stack)
 
     by_file: dict[Path, list[tuple[int, int | None]]] = defaultdict(list)
+    tiles: dict[Path, list[tuple[int, int]]] = defaultdict(list)
     for k, ref in zip(indices, stack.instances, strict=True):
-        by_file[ref.path].append((k, ref.frame))
+        if ref.tile is not None:
+            tiles[ref.path].append((k, ref.tile))
+        else:
+            by_file[ref.path].append((k, ref.frame))
+    for path, tile_targets in tiles.items():
+        _load_mosaic_tiles(volume, path, tile_targets, rows, columns)
     for path, targets in by_file.items():
         if all(f is None for _, f in targets):
             native = read_native_frame(path)
@@ -170,8 +184,6 @@ def load_stack(stack: Stack) -> sitk.Image:
         if str(ds.get("SOPClassUID", "")) in MULTIFRAME_CLASSES or any(
             f is not None for _, f in targets
         ):
-            from sigreport.ingest.enhanced import FunctionalGroups, frame_scaling
-
             groups = FunctionalGroups(ds)
             frames = pixels if pixels.ndim == 3 else pixels[np.newaxis]
             for k, frame in targets:
@@ -197,6 +209,26 @@ def load_stack(stack: Stack) -> sitk.Image:
     image.SetSpacing(stack.spacing_mm)
     image.SetDirection(stack.direction)
     return image
+
+
+def _load_mosaic_tiles(
+    volume: np.ndarray, path: Path, targets: list[tuple[int, int]], rows: int, columns: int
+) -> None:
+    """Fill ``volume[k]`` with tile ``tile`` of the mosaic in ``path`` for each (k, tile),
+    rescaled like any classic image (ingest/mosaic.py describes the tile layout)."""
+    native = read_native_frame(path)
+    if native is not None:
+        ds, pixels = native
+    else:
+        ds = _read(path)
+        pixels = _pixels(ds, path)
+    scaling = classic_scaling(ds)
+    for k, tile in targets:
+        try:
+            part = cut_tile(pixels, tile, rows, columns)
+        except ValueError as exc:
+            raise InputError(f"{path.name}: {exc}") from None
+        volume[k] = _apply(part, scaling)
 
 
 def _check(frame: np.ndarray, rows: int, columns: int, path: Path) -> np.ndarray:

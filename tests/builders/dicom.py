@@ -259,13 +259,17 @@ def enhanced_dataset(
     conflict_pixel_measures: bool = False,
     series_uid: str | None = None,
     description: str = "",
+    frame_type: dict[str, Any] | None = None,
+    diffusion: dict[str, Any] | None = None,
 ) -> Dataset:
     """An Enhanced MR Image (PS3.3 A.36.2) holding ``stored`` (slices, rows, columns).
 
     Slice k of ``stored`` is written as frame ``frame_order.index(k)`` (default: reversed), so
     the file's frame order differs from the spatial order. Orientation, pixel measures, timing
     and the Pixel Value Transformation (``rescale``) are shared; position, frame content, echo
-    and (``per_frame_rescale``, ``rwvm``) scaling are per frame.
+    and (``per_frame_rescale``, ``rwvm``) scaling are per frame. ``frame_type`` adds attributes
+    to the shared MR Image Frame Type item (e.g. AcquisitionContrast, ComplexImageComponent,
+    FrameType), ``diffusion`` to each MR Diffusion item.
     """
     stored = np.asarray(stored)
     direction = _check_direction(direction)
@@ -310,7 +314,9 @@ def enhanced_dataset(
     )
     if modifier is not None:
         shared.MRModifierSequence = _seq(**modifier)
-    shared.MRImageFrameTypeSequence = _seq(FrameType=["ORIGINAL", "PRIMARY", "M", "NONE"])
+    shared.MRImageFrameTypeSequence = _seq(
+        **{"FrameType": ["ORIGINAL", "PRIMARY", "M", "NONE"], **(frame_type or {})}
+    )
     if rescale is not None:
         shared.PixelValueTransformationSequence = _seq(
             RescaleSlope=rescale[0], RescaleIntercept=rescale[1], RescaleType="US"
@@ -347,12 +353,120 @@ def enhanced_dataset(
             )
         if b_value is not None:
             item.MRDiffusionSequence = _seq(
-                DiffusionBValue=b_value, DiffusionDirectionality="ISOTROPIC"
-            )
+                **{"DiffusionBValue": b_value, "DiffusionDirectionality": "ISOTROPIC",
+                   **(diffusion or {})}
+            )  # fmt: skip
         if conflict_pixel_measures:
             item.PixelMeasuresSequence = _seq(PixelSpacing=[spacing[1], spacing[0]])
         per_frame.append(item)
     ds.SharedFunctionalGroupsSequence = DicomSequence([shared])
     ds.PerFrameFunctionalGroupsSequence = DicomSequence(per_frame)
     _pixel_module(ds, frames)
+    return ds
+
+
+# --------------------------------------------------------------------------------------------
+# Siemens-style mosaics with a CSA image header
+
+
+def csa2_header(tags: dict[str, tuple[str, Sequence[Any]]]) -> bytes:
+    """A vendor CSA2 ("SV10") private header holding ``tags`` (name -> (VR, values)).
+
+    The layout is the one nibabel's ``csareader.read`` parses: "SV10", 4 unused bytes, tag count
+    and a check word, then per tag a 64-byte name, VM, 4-byte VR, SyngoDT, item count and a check
+    word, then per item four int32 (the second is the item length) and the value, NUL-ended and
+    padded to 4 bytes.
+    """
+    import struct
+
+    out = [b"SV10", b"\x04\x03\x02\x01", struct.pack("<2I", len(tags), 77)]
+    for name, (vr, values) in tags.items():
+        out.append(
+            struct.pack("<64si4s3i", name.encode(), len(values), vr.encode(), 0, len(values), 77)
+        )
+        for value in values:
+            text = (f"{value:.8f}" if isinstance(value, float) else str(value)).encode() + b"\0"
+            out.append(struct.pack("<4i", len(text), len(text), 77, len(text)))
+            out.append(text + b"\0" * (-len(text) % 4))
+    return b"".join(out)
+
+
+def mosaic_dataset(
+    volume: np.ndarray,
+    *,
+    origin: Sequence[float] = (0.0, 0.0, 0.0),
+    spacing: Sequence[float] = (2.0, 2.0, 3.0),
+    direction: np.ndarray = AXIAL,
+    normal_sign: float = 1.0,
+    csa: bool = True,
+    n_in_csa: int | None = None,
+    description: str = "ep2d_diff_mosaic",
+    b_value: float | None = 1000.0,
+    directionality: str | None = None,
+    extra: dict[str, Any] | None = None,
+) -> Dataset:
+    """A classic MR image tiling ``volume`` (slices, rows, columns) in the vendor's mosaic layout.
+
+    Slice k of ``volume`` lies at ``origin + k * spacing[2] * normal_sign * normal`` (normal =
+    row x column), so ``normal_sign = -1`` writes the slices in descending order, as the CSA
+    SliceNormalVector then says. The grid is ceil(sqrt(n)) tiles on a side, filled row by row;
+    ImagePositionPatient is the top-left of the whole mosaic as if it were one image centred on
+    the slice group (the vendor's convention, described in nibabel's documentation).
+    """
+    volume = np.asarray(volume)
+    direction = _check_direction(direction)
+    n, rows, cols = volume.shape
+    grid = int(np.ceil(np.sqrt(n)))
+    mosaic = np.zeros((grid * rows, grid * cols), dtype=volume.dtype)
+    for k in range(n):
+        r, c = divmod(k, grid)
+        mosaic[r * rows : (r + 1) * rows, c * cols : (c + 1) * cols] = volume[k]
+    row_dir, col_dir, normal = direction[:, 0], direction[:, 1], direction[:, 2]
+    first = np.asarray(origin, float)
+    ipp = (
+        first
+        - row_dir * spacing[0] * (grid * cols - cols) / 2.0
+        - col_dir * spacing[1] * (grid * rows - rows) / 2.0
+    )
+    ds = _base(
+        MR_IMAGE,
+        study_uid=generate_uid(),
+        series_uid=generate_uid(),
+        for_uid=generate_uid(),
+        series_number=7,
+        description=description,
+        modality="MR",
+    )
+    ds.Manufacturer = "SIEMENS"
+    ds.ImageType = ["ORIGINAL", "PRIMARY", "DIFFUSION", "NONE", "ND", "MOSAIC"]
+    ds.ScanningSequence = "EP"
+    ds.SequenceVariant = ["SK", "SP"]
+    ds.MRAcquisitionType = "2D"
+    ds.RepetitionTime = "5000"
+    ds.EchoTime = "90"
+    ds.FlipAngle = "90"
+    ds.MagneticFieldStrength = "3"
+    ds.ImagePositionPatient = [f"{v:.6f}" for v in ipp]
+    ds.ImageOrientationPatient = [f"{v:.8f}" for v in (*row_dir, *col_dir)]
+    ds.PixelSpacing = [f"{spacing[1]:g}", f"{spacing[0]:g}"]
+    ds.SliceThickness = f"{spacing[2]:g}"
+    ds.SpacingBetweenSlices = f"{spacing[2]:g}"
+    ds.InstanceNumber = 1
+    ds.AcquisitionNumber = 1
+    if b_value is not None:
+        ds.DiffusionBValue = b_value
+    if csa:
+        tags: dict[str, tuple[str, Sequence[Any]]] = {
+            "NumberOfImagesInMosaic": ("US", [n if n_in_csa is None else n_in_csa]),
+            "SliceNormalVector": ("FD", [float(v) for v in normal_sign * normal]),
+            # nibabel takes a CSA header for a mosaic only when this text is present too.
+            "AcquisitionMatrixText": ("SH", [f"{rows}*{cols}"]),
+        }
+        if directionality is not None:
+            tags["DiffusionDirectionality"] = ("CS", [directionality])
+        block = ds.private_block(0x0029, "SIEMENS CSA HEADER", create=True)
+        block.add_new(0x10, "OB", csa2_header(tags))
+    for keyword, value in (extra or {}).items():
+        setattr(ds, keyword, value)
+    _pixel_module(ds, mosaic)
     return ds

@@ -29,7 +29,7 @@ from pydicom.uid import (
     RLELossless,
 )
 
-from sigreport.ingest import header
+from sigreport.ingest import attributes, header
 from sigreport.ingest.fastheader import read_header
 from sigreport.ingest.volume import read_native_frame
 
@@ -61,7 +61,7 @@ def _values(ds: Dataset) -> dict[str, Any]:
         warnings.simplefilter("ignore")
         for keyword in header._SCAN_KEYWORDS:
             try:
-                out[keyword] = header._get(ds, keyword)
+                out[keyword] = attributes._get(ds, keyword)
             except Exception as exc:  # compared as the failure's type
                 out[keyword] = type(exc).__name__
     return out

@@ -261,7 +261,7 @@ def test_several_problems_are_reported_together_one_per_line(tmp_path):
         load_case(write_case(tmp_path, text))
     assert str(caught.value).splitlines() == [
         "case.toml: [roles]: unknown role 'T3'; expected one of T1, T2, PD, FLAIR, STIR, T1FS, "
-        "T2FS, T1POST, T1POSTFS, DWI, ADC, T2STAR",
+        "T2FS, T1POST, T1POSTFS, DWI, ADC, T2STAR, IP, OP, WATER, FAT, SWI",
         "case.toml: roi[1] (L1): radius_mm must be a positive number, got -3",
         "case.toml: roi[2] (R1): unknown shape 'cube'; expected one of sphere, ellipsoid, box, "
         "mask",
