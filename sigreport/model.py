@@ -30,6 +30,11 @@ class Role(StrEnum):
     DWI = "DWI"
     ADC = "ADC"
     T2STAR = "T2STAR"
+    IP = "IP"  # gradient-echo in-phase
+    OP = "OP"  # gradient-echo opposed-phase
+    WATER = "WATER"  # Dixon water image
+    FAT = "FAT"  # Dixon fat image
+    SWI = "SWI"  # susceptibility-weighted magnitude
     UNKNOWN = "UNKNOWN"
 
 
