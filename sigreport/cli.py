@@ -146,7 +146,8 @@ def demo(
     scenario: Annotated[
         str,
         typer.Option(
-            "--scenario", help="A bundled scenario (neuro, orbit) or a scenario TOML file."
+            "--scenario",
+            help="A bundled scenario (neuro, orbit, diffusion, kinetics) or a scenario TOML file.",
         ),
     ] = "neuro",
     force: Annotated[bool, typer.Option("--force", help="Replace OUT if it is not empty.")] = False,

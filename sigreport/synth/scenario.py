@@ -18,7 +18,9 @@ from sigreport.synth.phantom import Cylinder, Ellipsoid, Solid, Sphere
 
 Vec3 = tuple[float, float, float]
 
-SEQUENCES = ("SE", "TSE", "IR", "GRE")
+SEQUENCES = ("SE", "TSE", "IR", "GRE", "DWI", "ADC", "DIXON")
+TE_KEYWORDS = ("in-phase", "opposed-phase")  # echo times worked out from the field strength
+DIXON_IMAGES = ("water", "fat")
 ORIENTATIONS = ("axial", "coronal", "sagittal")
 
 
@@ -92,6 +94,13 @@ class SeriesPlan:
     center_mm: Vec3 = (0.0, 0.0, 0.0)
     rescale: tuple[float, float] | None = None  # (slope, intercept)
     localizer: bool = False  # ImageType LOCALIZER; role UNKNOWN, never measured
+    te_keyword: str | None = None  # "in-phase" / "opposed-phase": TE from the field strength
+    b_values: tuple[float, ...] = ()  # DWI: the b-values (s/mm^2) of the trace images
+    adc_of: int | None = None  # ADC: the number of the DWI series it is computed from
+    dixon: str | None = None  # DIXON: "water" or "fat"
+    delay_s: float | None = None  # dynamic post-contrast phase: seconds after injection
+    group: str | None = None  # series of one acquisition (dynamic phases, Dixon images, echoes):
+    # they share the head position and the receive field
 
     @property
     def measured(self) -> bool:
@@ -238,6 +247,7 @@ _SERIES_KEYS = {
     "role", "number", "description", "sequence", "acquisition", "orientation", "tr_ms", "te_ms",
     "ti_ms", "flip_deg", "echo_train", "fat_sat", "contrast", "tilt_deg", "center_mm",
     "pixel_mm", "slice_mm", "gap_mm", "fov_mm", "snr", "gain_group", "rescale", "localizer",
+    "b_values", "adc_of", "dixon", "delay_s", "group",
 }  # fmt: skip
 
 
@@ -269,8 +279,32 @@ def _series(entry: dict[str, Any], where: str) -> SeriesPlan:
         raise InputError(f"{where}: an IR series needs ti_ms")
     if (role is Role.UNKNOWN) != bool(entry.get("localizer", False)):
         raise InputError(f"{where}: a localizer has role UNKNOWN, and only a localizer has")
-    if sequence == "GRE" and entry.get("flip_deg") is None:
-        raise InputError(f"{where}: a GRE series needs flip_deg")
+    te = entry.get("te_ms")
+    te_keyword = te if isinstance(te, str) else None
+    if te_keyword is not None and (
+        te_keyword not in TE_KEYWORDS or sequence not in ("GRE", "DIXON")
+    ):
+        raise InputError(
+            f"{where}.te_ms: {te!r}: a word is allowed for gradient echo only, one of {TE_KEYWORDS}"
+        )
+    b_values = tuple(float(b) for b in entry.get("b_values", ()))
+    if (sequence == "DWI") != bool(b_values) or any(b < 0 for b in b_values):
+        raise InputError(f"{where}: a DWI series (and only a DWI series) needs b_values >= 0")
+    if sequence == "DWI" and (len(b_values) < 2 or b_values[0] != 0 or max(b_values) <= 0):
+        raise InputError(f"{where}.b_values: start with 0 and hold a higher b, got {b_values}")
+    adc_of = entry.get("adc_of")
+    if (sequence == "ADC") != (adc_of is not None):
+        raise InputError(f"{where}: an ADC series (and only one) names adc_of = <DWI number>")
+    dixon = entry.get("dixon")
+    if (sequence == "DIXON") != (dixon is not None) or (
+        dixon is not None and dixon not in DIXON_IMAGES
+    ):
+        raise InputError(f"{where}: a DIXON series (and only one) has dixon = water or fat")
+    delay = entry.get("delay_s")
+    if delay is not None and (not entry.get("contrast") or float(delay) < 0):
+        raise InputError(f"{where}.delay_s: a dynamic phase is post-contrast with delay_s >= 0")
+    if sequence in ("GRE", "DIXON") and entry.get("flip_deg") is None:
+        raise InputError(f"{where}: a {sequence} series needs flip_deg")
     rescale = entry.get("rescale")
     if rescale is not None:
         if not isinstance(rescale, list) or len(rescale) != 2 or float(rescale[0]) <= 0:
@@ -287,7 +321,7 @@ def _series(entry: dict[str, Any], where: str) -> SeriesPlan:
         acquisition=acquisition,
         orientation=orientation,
         tr_ms=_positive(entry.get("tr_ms"), f"{where}.tr_ms"),
-        te_ms=_positive(entry.get("te_ms"), f"{where}.te_ms"),
+        te_ms=1.0 if te_keyword else _positive(te, f"{where}.te_ms"),
         pixel_mm=_positive(entry.get("pixel_mm"), f"{where}.pixel_mm"),
         slice_mm=_positive(entry.get("slice_mm"), f"{where}.slice_mm"),
         gap_mm=gap,
@@ -304,6 +338,12 @@ def _series(entry: dict[str, Any], where: str) -> SeriesPlan:
         center_mm=_vec3(entry.get("center_mm", [0.0, 0.0, 0.0]), f"{where}.center_mm"),
         rescale=rescale,
         localizer=bool(entry.get("localizer", False)),
+        te_keyword=te_keyword,
+        b_values=b_values,
+        adc_of=None if adc_of is None else int(adc_of),
+        dixon=dixon,
+        delay_s=None if delay is None else float(delay),
+        group=None if entry.get("group") is None else str(entry["group"]),
     )
 
 
@@ -354,8 +394,15 @@ def load_scenario(path: Path | str) -> Scenario:
     if not series:
         raise InputError(f"{w}: no [[series]]")
     roles = [s.role for s in series]
-    if len(set(roles)) != len(roles):
+    single = [s.role for s in series if s.delay_s is None]  # dynamic phases may share a role
+    if len(set(single)) != len(single):
         raise InputError(f"{w}: each series role may appear once, got {[r.value for r in roles]}")
+    numbers_seen = {s.number: s for s in series}
+    for s in series:
+        if s.adc_of is not None:
+            source = numbers_seen.get(s.adc_of)
+            if source is None or source.sequence != "DWI":
+                raise InputError(f"{w}: series {s.number}: adc_of = {s.adc_of} is not a DWI series")
     numbers = [s.number for s in series]
     if len(set(numbers)) != len(numbers) or min(numbers) < 1:
         raise InputError(f"{w}: series numbers must be distinct and >= 1, got {numbers}")

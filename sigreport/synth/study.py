@@ -23,13 +23,24 @@ from pydicom.uid import generate_uid
 
 from sigreport.errors import InputError
 from sigreport.model import EnhancementPattern, RoiKind, Role
-from sigreport.synth import phantom
+from sigreport.synth import phantom, physics
 from sigreport.synth.geometry import SeriesGeometry, model_image, plan_geometry, sample
 from sigreport.synth.physics import rician
 from sigreport.synth.scenario import RoiPlan, Scenario, SeriesPlan, load_scenario
-from sigreport.synth.sequences import ResolvedSeries, resolve_ti, tissue_signals
+from sigreport.synth.sequences import (
+    ResolvedSeries,
+    resolve_ti,
+    tissue_signals,
+    water_fat_signals,
+)
 from sigreport.synth.tissues import TissueTable, demo_dir, load_tissues
-from sigreport.synth.writer import SeriesOutput, StudyHeader, write_classic, write_enhanced
+from sigreport.synth.writer import (
+    SeriesOutput,
+    SeriesTiming,
+    StudyHeader,
+    write_classic,
+    write_enhanced,
+)
 
 TRUTH_SCHEMA = "sigreport-truth/1"
 ROI_PURITY = 0.95  # every ROI voxel must be at least this fraction of its `contains` tissues
@@ -174,6 +185,92 @@ def _random_motion(scn: Scenario, rng: np.random.Generator) -> Motion:
     )
 
 
+@dataclass(frozen=True)
+class _Echo:
+    """One image set a series plan writes: the biased noiseless image on the model grid, and
+    for a derived map its series-grid images (computed, not sampled)."""
+
+    index: int  # 0 for the first image set of the series, 1, 2... for further b-values
+    model: np.ndarray
+    b_value: float | None = None
+    still: np.ndarray | None = None
+    noisy: np.ndarray | None = None
+
+
+def _echoes(
+    plan: SeriesPlan,
+    resolved: ResolvedSeries,
+    table: TissueTable,
+    model: phantom.HeadModel,
+    bias: np.ndarray,
+    fat_sat_failed: bool,
+    dwi_images: dict[int, dict[float, tuple[np.ndarray, np.ndarray, np.ndarray]]],
+) -> list[_Echo]:
+    """The image sets of one series: one for most series, one per b-value for DWI; an ADC map
+    is computed from its DWI series' b=0 and highest-b images (noiseless on the model grid,
+    noisy on the series grid), as a scanner computes it."""
+    if plan.sequence == "DWI":
+        return [
+            _Echo(
+                k,
+                model.paint(
+                    tissue_signals(resolved, table, b_value=b, fat_sat_failed=fat_sat_failed)
+                )
+                * bias,
+                b_value=b,
+            )
+            for k, b in enumerate(plan.b_values)
+        ]
+    if plan.sequence == "ADC":
+        assert plan.adc_of is not None
+        source = dwi_images[plan.adc_of]
+        b = max(source)
+        (m0, s0, n0), (mb, sb, nb) = source[0.0], source[b]
+        noisy = physics.apparent_diffusion(n0, nb, b)
+        # Scanners blank the map where the b=0 signal is background (common practice).
+        noisy[n0 < 0.05 * float(np.percentile(n0, 99))] = 0.0
+        noisy = np.clip(noisy, 0.0, 5000.0)
+        return [
+            _Echo(
+                0,
+                physics.apparent_diffusion(m0, mb, b).astype(np.float32),
+                still=physics.apparent_diffusion(s0, sb, b),
+                noisy=noisy,
+            )
+        ]
+    if plan.sequence == "DIXON" or plan.te_keyword is not None:
+        water, fat = water_fat_signals(resolved, table)
+        w, f = model.paint(water) * bias, model.paint(fat) * bias
+        if plan.dixon == "water":
+            return [_Echo(0, w)]
+        if plan.dixon == "fat":
+            return [_Echo(0, f)]
+        phase = physics.fat_water_phase(resolved.plan.te_ms, table.field_strength_t)
+        return [_Echo(0, physics.two_component_magnitude(w, f, phase).astype(np.float32))]
+    return [
+        _Echo(0, model.paint(tissue_signals(resolved, table, fat_sat_failed=fat_sat_failed)) * bias)
+    ]
+
+
+def _timing(scn: Scenario, plan: SeriesPlan) -> SeriesTiming | None:
+    """Acquisition time and temporal position of a dynamic phase: the phases of a group are
+    timed from the injection, which starts when the group's first post phase would start."""
+    if plan.group is None or not any(s.group == plan.group and s.contrast for s in scn.series):
+        return None
+    members = [s for s in scn.series if s.group == plan.group]
+    first_post = min(s.number for s in members if s.contrast)
+    hh, mm, ss = (int(scn.study.time[i : i + 2] or 0) for i in (0, 2, 4))
+    injection = hh * 3600 + mm * 60 + ss + 240 * first_post - 60
+    delay = plan.delay_s if plan.delay_s is not None else -60.0  # the pre phase: a minute before
+    order = sorted(members, key=lambda s: s.delay_s if s.delay_s is not None else -1.0)
+    return SeriesTiming(
+        acquisition_s=(injection + delay) % 86400,
+        injection_s=injection % 86400 if plan.contrast else None,
+        temporal_position=order.index(plan) + 1,
+        temporal_positions=len(members),
+    )
+
+
 def _check_scenario(scn: Scenario, table: TissueTable) -> None:
     names = {t for lesion in scn.lesions for t, _ in lesion.solids}
     names |= {t for r in scn.rois for t in r.contains}
@@ -229,6 +326,89 @@ def _ratio_flags(
         "enhancement_percent": None if enh is None else round(enh, 3),
     }
     return expected, percents
+
+
+def _sequence_family_truth(
+    scn: Scenario,
+    roi_id: str,
+    ref_id: str,
+    ratio: dict[Role, float],
+    medians: dict[str, dict[Role, float]],
+    phase_medians: dict[str, dict[int, float]],
+    rules: dict[str, float],
+) -> dict[str, Any]:
+    """Expected diffusion, susceptibility, chemical-shift and dynamic values of one ROI from
+    the noiseless model (the definitions of docs/measurements.md, applied to the truth)."""
+    out: dict[str, Any] = {"expected": {}}
+    hyper, hypo = rules["hyperintense_ratio"], rules["hypointense_ratio"]
+    if Role.DWI in ratio and Role.ADC in ratio:
+        bright = ratio[Role.DWI] >= hyper
+        out["diffusion"] = {
+            "dwi_ratio": round(ratio[Role.DWI], 6),
+            "adc_ratio": round(ratio[Role.ADC], 6),
+        }
+        out["expected"]["restricted"] = bool(bright and ratio[Role.ADC] <= hypo)
+        out["expected"]["shine_through"] = bool(bright and ratio[Role.ADC] > hypo)
+    to = Role.SWI if Role.SWI in ratio else Role.T2STAR if Role.T2STAR in ratio else None
+    if to is not None and Role.T2 in ratio and ratio[Role.T2] > 0:
+        drop = 100.0 * (1.0 - ratio[to] / ratio[Role.T2])
+        out["susceptibility"] = {"to": to.value, "drop_percent": round(drop, 3)}
+        out["expected"]["blooming"] = bool(
+            drop >= rules["blooming_drop_percent"] and ratio[to] <= hypo
+        )
+    if Role.IP in ratio and Role.OP in ratio and ratio[Role.IP] > 0:
+        drop = 100.0 * (1.0 - ratio[Role.OP] / ratio[Role.IP])
+        out["chemical_shift"] = {"drop_percent": round(drop, 3)}
+        out["expected"]["microscopic_fat"] = bool(drop >= rules["microscopic_fat_drop_percent"])
+    if Role.WATER in medians[roi_id] and Role.FAT in medians[roi_id]:
+        w, f = medians[roi_id][Role.WATER], medians[roi_id][Role.FAT]
+        cs = out.setdefault("chemical_shift", {})
+        cs["fat_fraction_percent"] = round(100.0 * f / (w + f), 3) if w + f > 0 else None
+    phases = sorted(
+        (s for s in scn.series if s.delay_s is not None), key=lambda s: float(s.delay_s or 0.0)
+    )
+    if len(phases) >= 2:
+        group = phases[0].group
+        pre = next(
+            (s for s in scn.series if s.group == group and not s.contrast and group is not None),
+            None,
+        )
+        if pre is not None:
+
+            def r(number: int) -> float:
+                ref = phase_medians[ref_id][number]
+                return phase_medians[roi_id][number] / ref if ref else 0.0
+
+            first = float(phases[0].delay_s or 0.0)
+            r_pre = r(pre.number)
+            entries: list[dict[str, Any]] = [
+                {
+                    "series_number": s.number,
+                    "delay_s": round(float(s.delay_s or 0.0) - first, 3),
+                    "percent": round(100.0 * (r(s.number) / r_pre - 1.0), 3) if r_pre else None,
+                }
+                for s in phases
+            ]
+            early: list[float] = [
+                float(e["percent"])
+                for e in entries
+                if e["delay_s"] <= rules["early_peak_delay_s"] and e["percent"] is not None
+            ]
+            last = entries[-1]["percent"]
+            curve = None
+            if early and last is not None:
+                peak = max(early)
+                band = rules["curve_band_percent"] / 100.0 * abs(peak)
+                curve = (
+                    "persistent"
+                    if last > peak + band
+                    else "washout"
+                    if last < peak - band
+                    else "plateau"
+                )
+            out["dynamic"] = {"pre_series_number": pre.number, "phases": entries}
+            out["expected"]["curve"] = curve
+    return out
 
 
 def _toml_value(value: Any) -> str:
@@ -409,75 +589,133 @@ def _write(
 
     medians: dict[str, dict[Role, float]] = {roi.id: {} for roi in scn.rois}
     series_medians: dict[str, dict[Role, float]] = {roi.id: {} for roi in scn.rois}
+    # Per series number, for the phases of a dynamic series and for diffusion.
+    phase_medians: dict[str, dict[int, float]] = {roi.id: {} for roi in scn.rois}
+    adc_truth: dict[str, float] = {}
     gains: dict[str, tuple[float, float, float]] = {}  # group -> gain, slope, intercept
     motions: dict[Role, Motion] = {}
+    group_motion: dict[str, Motion] = {}
+    group_bias: dict[str, np.ndarray] = {}
+    dwi_sigma = 0.0
+    dwi_images: dict[int, dict[float, tuple[np.ndarray, np.ndarray, np.ndarray]]] = {}
     series_json: dict[str, Any] = {}
     for plan in scn.series:
-        resolved: ResolvedSeries = resolve_ti(plan, table)
-        signals = tissue_signals(resolved, table, fat_sat_failed=fat_sat_failed)
-        biased = model.paint(signals) * _bias_field(grid, rng_bias)
-        for roi in scn.rois if plan.measured else ():  # localizers are never measured
-            medians[roi.id][plan.role] = float(np.median(biased[masks[roi.id]]))
+        resolved: ResolvedSeries = resolve_ti(plan, table, field_strength_t=scn.field_strength_t)
+        plan_te = resolved.plan
         geo = plan_geometry(plan)
         move = NO_MOTION
-        if scn.motion and plan.role is not scn.anchor:
-            move = _random_motion(scn, rng_motion)
+        if plan.adc_of is not None:  # computed from its DWI series: same geometry and motion
+            geo = plan_geometry(next(s for s in scn.series if s.number == plan.adc_of))
+            move = group_motion[f"series {plan.adc_of}"]
+        elif scn.motion and plan.role is not scn.anchor:
+            group = f"group {plan.group}" if plan.group else None
+            move = group_motion.get(group) if group else None  # type: ignore[assignment]
+            if move is None:
+                move = _random_motion(scn, rng_motion)
+                if group:
+                    group_motion[group] = move
+        group_motion[f"series {plan.number}"] = move
         motions[plan.role] = move
-        seen = sample(
-            model_image(biased, grid), geo, None if move is NO_MOTION else move.transform()
-        )
-        if plan.measured:
-            # What an ideal measurement sees on this series: the noiseless, motion-free series
-            # image (slice profile and partial volume included) over the voxels whose centres
-            # lie inside each ROI. Heterogeneous lesions (a rim around a core) have a median
-            # that depends on the slice thickness, so this is the truth for each series.
-            still = seen if move is NO_MOTION else sample(model_image(biased, grid), geo, None)
-            for roi in scn.rois:
-                inside = _series_roi_mask(geo, roi)
-                if inside.any():
-                    series_medians[roi.id][plan.role] = float(np.median(still[inside]))
-        sigma = float(np.percentile(biased[head], 95)) / plan.snr
-        noisy = rician(seen, sigma, rng_noise)
-        if plan.gain_group not in gains:
-            slope, intercept = plan.rescale or (1.0, 0.0)
-            peak = float(np.percentile(noisy, 99.5)) or 1.0
-            gain = GAIN_TARGET * float(rng_gain.uniform(0.6, 1.6)) / peak
-            gains[plan.gain_group] = (gain, slope, intercept)
-        gain, slope, intercept = gains[plan.gain_group]
-        if plan.rescale is not None and plan.rescale != (slope, intercept):
-            raise InputError(
-                f"series {plan.role.value}: rescale {plan.rescale} differs from its gain group "
-                f'"{plan.gain_group}" ({slope}, {intercept})'
+        bias = _bias_field(grid, rng_bias)
+        if plan.group:  # one acquisition, one receive field
+            bias = group_bias.setdefault(plan.group, bias)
+        for echo in _echoes(plan, resolved, table, model, bias, fat_sat_failed, dwi_images):
+            is_role_image = echo.b_value is None or echo.b_value == max(plan.b_values)
+            if plan.measured and is_role_image:
+                for roi in scn.rois:  # localizers are never measured
+                    medians[roi.id][plan.role] = float(np.median(echo.model[masks[roi.id]]))
+                    phase_medians[roi.id][plan.number] = medians[roi.id][plan.role]
+                    if plan.sequence == "ADC":
+                        adc_truth[roi.id] = medians[roi.id][plan.role]
+            if echo.noisy is None:
+                seen = sample(
+                    model_image(echo.model, grid),
+                    geo,
+                    None if move is NO_MOTION else move.transform(),
+                )
+                still = (
+                    seen if move is NO_MOTION else sample(model_image(echo.model, grid), geo, None)
+                )
+                sigma = float(np.percentile(echo.model[head], 95)) / plan.snr
+                if echo.b_value:  # the noise of the b=0 image: same receiver, same bandwidth
+                    sigma = dwi_sigma
+                noisy = rician(seen, sigma, rng_noise)
+            else:  # a derived map: computed from the noisy images of its source
+                assert echo.still is not None
+                still, noisy, sigma = echo.still, echo.noisy, 0.0
+            if plan.sequence == "DWI":
+                assert echo.b_value is not None
+                dwi_images.setdefault(plan.number, {})[echo.b_value] = (echo.model, still, noisy)
+                if echo.b_value == 0:
+                    dwi_sigma = sigma
+            if plan.measured and is_role_image:
+                # What an ideal measurement sees on this series: the noiseless, motion-free
+                # series image (slice profile and partial volume included) over the voxels
+                # whose centres lie inside each ROI. Heterogeneous lesions (a rim around a
+                # core) have a median that depends on the slice thickness, so this is the
+                # truth for each series.
+                for roi in scn.rois:
+                    inside = _series_roi_mask(geo, roi)
+                    if inside.any():
+                        series_medians[roi.id][plan.role] = float(np.median(still[inside]))
+            if plan.sequence == "ADC":
+                slope, intercept = plan.rescale or (1.0, 0.0)
+                gain = 1.0  # stored in physical units, 10^-6 mm^2/s (times the rescale)
+            else:
+                if plan.gain_group not in gains:
+                    slope, intercept = plan.rescale or (1.0, 0.0)
+                    peak = float(np.percentile(noisy, 99.5)) or 1.0
+                    gain = GAIN_TARGET * float(rng_gain.uniform(0.6, 1.6)) / peak
+                    gains[plan.gain_group] = (gain, slope, intercept)
+                gain, slope, intercept = gains[plan.gain_group]
+                if plan.rescale is not None and plan.rescale != (slope, intercept):
+                    raise InputError(
+                        f"series {plan.role.value}: rescale {plan.rescale} differs from its gain "
+                        f'group "{plan.gain_group}" ({slope}, {intercept})'
+                    )
+            stored = np.clip(np.rint((gain * noisy - intercept) / slope), 0, 65535).astype(
+                np.uint16
             )
-        stored = np.clip(np.rint((gain * noisy - intercept) / slope), 0, 65535).astype(np.uint16)
-        series_uid = generate_uid(entropy_srcs=[*map(str, entropy), "series", str(plan.number)])
-        n_inst = 1 if enhanced else geo.size[2]
-        sops = tuple(
-            generate_uid(entropy_srcs=[series_uid, "instance", str(k)]) for k in range(n_inst)
-        )
-        description = f"SERIES {plan.number}" if useless_descriptions else plan.description
-        out = SeriesOutput(
-            plan=plan,
-            ti_ms=resolved.ti_ms,
-            geometry=geo,
-            pixels=stored,
-            slope=slope,
-            intercept=intercept,
-            series_instance_uid=series_uid,
-            sop_instance_uids=sops,
-            description=description,
-        )
-        folder = study_dir / f"S{plan.number:02d}"
-        if enhanced:
-            write_enhanced(header, out, folder / "MF0001.dcm")
-        else:
-            write_classic(header, out, folder)
-        series_json[plan.role.value] = {
-            "series_number": plan.number,
-            "series_instance_uid": series_uid,
-            "inversion_time_ms": None if resolved.ti_ms is None else round(resolved.ti_ms, 1),
-            "noise_sigma": round(sigma * gain, 6),  # rescaled units
-        }
+            series_uid = generate_uid(entropy_srcs=[*map(str, entropy), "series", str(plan.number)])
+            n_inst = 1 if enhanced else geo.size[2]
+            salt = [] if echo.index == 0 else ["echo", str(echo.index)]
+            sops = tuple(
+                generate_uid(entropy_srcs=[series_uid, *salt, "instance", str(k)])
+                for k in range(n_inst)
+            )
+            description = f"SERIES {plan.number}" if useless_descriptions else plan.description
+            out = SeriesOutput(
+                plan=plan_te,
+                ti_ms=resolved.ti_ms,
+                geometry=geo,
+                pixels=stored,
+                slope=slope,
+                intercept=intercept,
+                series_instance_uid=series_uid,
+                sop_instance_uids=sops,
+                description=description,
+                b_value=echo.b_value,
+                first_instance=echo.index * n_inst,
+                timing=_timing(scn, plan),
+            )
+            folder = study_dir / f"S{plan.number:02d}"
+            if enhanced:
+                suffix = "" if echo.index == 0 else f"_{echo.index + 1}"
+                write_enhanced(header, out, folder / f"MF0001{suffix}.dcm")
+            else:
+                write_classic(header, out, folder)
+            if is_role_image:
+                series_json[plan.role.value] = {
+                    "series_number": plan.number,
+                    "series_instance_uid": series_uid,
+                    "inversion_time_ms": None
+                    if resolved.ti_ms is None
+                    else round(resolved.ti_ms, 1),
+                    "echo_time_ms": plan_te.te_ms,
+                    "noise_sigma": round(sigma * gain, 6),  # rescaled units
+                }
+                if plan.b_values:
+                    series_json[plan.role.value]["b_value"] = max(plan.b_values)
 
     refs = {r.id: r for r in scn.rois if r.kind is RoiKind.REFERENCE}
     first_ref = next(iter(refs))
@@ -494,7 +732,12 @@ def _write(
             for role in series_medians[roi.id]
             if series_medians[ref_id].get(role)
         }
+        extra = _sequence_family_truth(scn, roi.id, ref_id, ratio, medians, phase_medians, rules)
+        if roi.id in adc_truth and extra.get("diffusion"):
+            extra["diffusion"]["adc_1e-6_mm2_s"] = round(adc_truth[roi.id], 3)
+        expected.update(extra.pop("expected"))
         rois_json[roi.id] = {
+            **extra,
             "kind": roi.kind.value,
             "tissue": roi.lesion if roi.kind is RoiKind.LESION else roi.tissue,
             "site": roi.site,

@@ -47,6 +47,17 @@ class StudyHeader:
 
 
 @dataclass(frozen=True)
+class SeriesTiming:
+    """When a phase of a dynamic series was acquired (seconds after midnight) and its place in
+    the time series (PS3.3 C.7.6.1: AcquisitionTime; C.8.3.1: TemporalPositionIdentifier)."""
+
+    acquisition_s: float
+    injection_s: float | None  # ContrastBolusStartTime, post-contrast phases only
+    temporal_position: int
+    temporal_positions: int
+
+
+@dataclass(frozen=True)
 class SeriesOutput:
     """One series ready to write: stored values ``pixels[slice, row, column]`` (uint16)."""
 
@@ -59,6 +70,38 @@ class SeriesOutput:
     series_instance_uid: str
     sop_instance_uids: tuple[str, ...]  # one per slice (classic) or one (enhanced)
     description: str
+    b_value: float | None = None  # a diffusion-weighted image set
+    first_instance: int = 0  # instances already written to the series (further b-values)
+    timing: SeriesTiming | None = None  # a phase of a dynamic series
+
+
+def _clock(seconds: float) -> str:
+    """A TM value (PS3.5 6.2) for ``seconds`` after midnight."""
+    whole = int(seconds) % 86400
+    return f"{whole // 3600:02d}{whole // 60 % 60:02d}{whole % 60:02d}"
+
+
+def _image_type(plan: SeriesPlan) -> list[str]:
+    """ImageType (PS3.3 C.7.6.1.1.2; C.8.3.1.1.1 for MR): value 3 names what the image is for
+    the images that are more than a plain magnitude (diffusion, maps, Dixon, SWI)."""
+    if plan.localizer:
+        return ["ORIGINAL", "PRIMARY", "LOCALIZER"]
+    if plan.sequence == "DWI":
+        return ["ORIGINAL", "PRIMARY", "DIFFUSION", "TRACEW"]
+    if plan.sequence == "ADC":
+        return ["DERIVED", "PRIMARY", "DIFFUSION", "ADC"]
+    if plan.sequence == "DIXON":
+        return ["DERIVED", "PRIMARY", "DIXON", "WATER" if plan.dixon == "water" else "FAT"]
+    if plan.te_keyword is not None:
+        return [
+            "ORIGINAL",
+            "PRIMARY",
+            "M",
+            "IN_PHASE" if plan.te_keyword == "in-phase" else "OUT_PHASE",
+        ]
+    if plan.role.value == "SWI":
+        return ["ORIGINAL", "PRIMARY", "M", "SWI"]
+    return ["ORIGINAL", "PRIMARY", "OTHER"]
 
 
 def _ds(value: float) -> str:
@@ -80,6 +123,8 @@ def _scanning(plan: SeriesPlan) -> tuple[list[str], list[str], list[str], str]:
         return ["SE"], ["SK", "SP"], options, f"tse{dim}_{plan.echo_train}"
     if plan.sequence == "IR":
         return ["SE", "IR"], ["SK", "SP", "MP"], options, f"irtse{dim}_{plan.echo_train}"
+    if plan.sequence in ("DWI", "ADC"):
+        return ["SE", "EP"], ["SK", "SP"], options, f"ep{dim}_diff"
     return ["GR"], ["SK", "SP"], options, f"gre{dim}_spoiled"
 
 
@@ -101,6 +146,12 @@ def _common(header: StudyHeader, out: SeriesOutput, sop_class: str) -> Dataset:
     series_time = f"{start // 3600:02d}{start // 60 % 60:02d}{start % 60:02d}"
     ds.StudyTime = s.time
     ds.SeriesTime = ds.AcquisitionTime = ds.ContentTime = series_time
+    if out.timing is not None:
+        ds.AcquisitionTime = ds.ContentTime = _clock(out.timing.acquisition_s)
+        ds.TemporalPositionIdentifier = out.timing.temporal_position
+        ds.NumberOfTemporalPositions = out.timing.temporal_positions
+        if out.timing.injection_s is not None:
+            ds.ContrastBolusStartTime = _clock(out.timing.injection_s)
     ds.AccessionNumber = s.accession
     ds.Modality = "MR"
     ds.Manufacturer = MANUFACTURER
@@ -159,7 +210,9 @@ def write_classic(header: StudyHeader, out: SeriesOutput, folder: Path) -> list[
     scanning, variant, options, name = _scanning(plan)
     center, width = _window(out)
     template = _common(header, out, MRImageStorage)
-    template.ImageType = ["ORIGINAL", "PRIMARY", "LOCALIZER" if plan.localizer else "OTHER"]
+    template.ImageType = _image_type(plan)
+    if out.b_value is not None:
+        template.DiffusionBValue = float(out.b_value)  # (0018,9087) FD, read by ingest
     template.ScanningSequence = scanning
     template.SequenceVariant = variant
     if options:
@@ -204,7 +257,7 @@ def write_classic(header: StudyHeader, out: SeriesOutput, folder: Path) -> list[
     for k in range(geo.size[2]):
         ds = Dataset()
         ds.SOPInstanceUID = out.sop_instance_uids[k]
-        ds.InstanceNumber = k + 1
+        ds.InstanceNumber = out.first_instance + k + 1
         pos = geo.slice_position(k)
         ds.ImagePositionPatient = [_ds(v) for v in pos]
         ds.SliceLocation = _ds(float(np.dot(pos, geo.normal)))
@@ -214,7 +267,7 @@ def write_classic(header: StudyHeader, out: SeriesOutput, folder: Path) -> list[
         meta = DicomBytesIO()
         meta.is_little_endian, meta.is_implicit_VR = True, False
         write_file_meta_info(meta, _file_meta(MRImageStorage, ds.SOPInstanceUID))
-        path = folder / f"IM{k + 1:04d}.dcm"
+        path = folder / f"IM{out.first_instance + k + 1:04d}.dcm"
         # Elements in ascending tag order (PS3.5 7.1); the shared ones are encoded once.
         body = b"".join(chunks[tag] for tag in sorted(chunks))
         path.write_bytes(b"\0" * 128 + b"DICM" + meta.getvalue() + body)
@@ -250,6 +303,8 @@ def _acquisition_contrast(plan: SeriesPlan, ti_ms: float | None) -> str:
     if plan.sequence == "IR":
         # Short-TI inversion nulls fat (STIR); a long TI nulls fluid (FLAIR); common practice.
         return "STIR" if ti_ms is not None and ti_ms < 400 else "FLUID_ATTENUATED"
+    if plan.sequence in ("DWI", "ADC"):
+        return "DIFFUSION"
     if plan.sequence == "GRE" or plan.tr_ms < 1000:
         return "T1"
     return "T2"
@@ -257,7 +312,12 @@ def _acquisition_contrast(plan: SeriesPlan, ti_ms: float | None) -> str:
 
 def _enhanced_image_type(plan: SeriesPlan) -> list[str]:
     """ImageType / FrameType of Enhanced MR (PS3.3 C.8.13.1.1.1): value 3 is the image flavor."""
-    return ["ORIGINAL", "PRIMARY", "LOCALIZER" if plan.localizer else "VOLUME", "NONE"]
+    flavor = _image_type(plan)
+    if plan.localizer:
+        return ["ORIGINAL", "PRIMARY", "LOCALIZER", "NONE"]
+    if len(flavor) == 4 and flavor[2] != "OTHER":  # e.g. DIFFUSION ADC, DIXON WATER, M SWI
+        return flavor[:2] + ([flavor[2], flavor[3]] if flavor[2] != "M" else ["VOLUME", flavor[3]])
+    return [flavor[0], flavor[1], "VOLUME", "NONE"]
 
 
 def write_enhanced(header: StudyHeader, out: SeriesOutput, path: Path) -> Path:
@@ -266,7 +326,7 @@ def write_enhanced(header: StudyHeader, out: SeriesOutput, path: Path) -> Path:
     path.parent.mkdir(parents=True, exist_ok=True)
     ds = _common(header, out, ENHANCED_MR_IMAGE_STORAGE)
     ds.SOPInstanceUID = out.sop_instance_uids[0]
-    ds.InstanceNumber = 1
+    ds.InstanceNumber = out.first_instance + 1
     ds.ContentQualification = "PRODUCT"
     ds.AcquisitionDateTime = f"{header.study.date}{ds.AcquisitionTime}"
     # Enhanced MR Image module (PS3.3 C.8.13.1)
@@ -293,7 +353,7 @@ def write_enhanced(header: StudyHeader, out: SeriesOutput, path: Path) -> Path:
     ds.TimeOfFlightContrast = "NO"
     ds.Spoiling = "RF_AND_GRADIENT" if plan.sequence == "GRE" else "NONE"
     ds.SteadyStatePulseSequence = "NONE"
-    ds.EchoPlanarPulseSequence = "NO"
+    ds.EchoPlanarPulseSequence = "YES" if plan.sequence in ("DWI", "ADC") else "NO"
     ds.SaturationRecovery = "NO"
     ds.SpectrallySelectedSuppression = "FAT" if plan.fat_sat else "NONE"
     ds.OversamplingPhase = "NONE"
@@ -417,6 +477,10 @@ def write_enhanced(header: StudyHeader, out: SeriesOutput, path: Path) -> Path:
         ]
     )
     shared.MRAveragesSequence = DicomSequence([_item(NumberOfAverages=1.0)])
+    if out.b_value is not None:  # MR Diffusion macro (PS3.3 C.8.13.5.9)
+        shared.MRDiffusionSequence = DicomSequence(
+            [_item(DiffusionBValue=out.b_value, DiffusionDirectionality="ISOTROPIC")]
+        )
     if plan.contrast:
         shared.ContrastBolusUsageSequence = DicomSequence(
             [
