@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import json
 import os
+import shutil
 import signal
 import stat
 import tempfile
@@ -143,6 +144,41 @@ def check_outdir(out_dir: Path | str, *, inputs: Inputs = (), force: bool = Fals
             raise InputError(problem)
     _probe(out, out.parent if info is not None else out)
     return out
+
+
+def prepare_folder(folder: Path | str, *, kind: str, force: bool = False) -> Path:
+    """Make ``folder`` ready for the tool to fill (the ``demo`` command's folder): absent or
+    empty is fine; a non-empty folder is emptied only with ``force`` and only when it is the
+    tool's own (:func:`replace_problem`).
+
+    Raises
+    ------
+    InputError
+        When ``folder`` is a file, is not empty and ``force`` is false, is not the tool's own,
+        or cannot be written.
+    """
+    path = Path(folder)
+    _check_lengths(path)
+    try:
+        info = path.lstat()
+    except (FileNotFoundError, NotADirectoryError):
+        info = None
+    except OSError as exc:
+        raise InputError(f"cannot use {shown(path)}: {exc.strerror}") from None
+    if info is not None:
+        if not stat.S_ISDIR(info.st_mode):
+            raise InputError(f"{shown(path)} exists and is not a folder")
+        if any(_entries(path, limit=1)):
+            if not force:
+                raise InputError(
+                    f"{shown(path)} exists and is not empty; use --force to replace it"
+                )
+            problem = replace_problem(path, kind=kind)
+            if problem:
+                raise InputError(problem)
+            shutil.rmtree(path)
+    _probe(path, path.parent if info is not None else path)
+    return path
 
 
 def _check_lengths(out: Path) -> None:
