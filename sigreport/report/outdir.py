@@ -1,4 +1,4 @@
-"""Where a report may be written, and what may be replaced (docs/outputs.md, "Safety of OUTDIR").
+"""Where a report may be written, and what may be replaced (docs/usage.md, "What OUTDIR may be").
 
 Three rules keep a run from destroying data:
 

@@ -3,7 +3,9 @@ with console markup or terminal escapes, internal errors with unwritable or huge
 
 from __future__ import annotations
 
+import errno
 import io
+import os
 import re
 from pathlib import Path
 
@@ -193,3 +195,63 @@ def test_an_error_log_folder_is_marked_so_force_can_replace_it(tmp_path, monkeyp
     out = tmp_path / "out"
     runner.invoke(app, ["report", str(tmp_path), "--case", str(case), "--out", str(out)])
     assert (out / "error.log").is_file() and (out / MARK_NAME).is_file()
+
+
+# ---- an OUTDIR that cannot be written ---------------------------------------------------------
+
+
+def _run(tiny, out: Path, *extra: str):
+    return runner.invoke(
+        app,
+        ["report", str(tiny.study_dir), "--case", str(tiny.case_path), "--out", str(out), *extra],
+    )
+
+
+@pytest.mark.parametrize(
+    "name, message",
+    [("r" * 300, "name of 300 characters is too long"), ("/".join(["d" * 99] * 50), "too long")],
+)
+def test_an_outdir_name_the_file_system_refuses_exits_2(tiny, tmp_path, name, message):
+    result = _run(tiny, tmp_path / name)
+    assert result.exit_code == 2, result.output
+    assert message in result.output and "Traceback" not in result.output
+    assert list(tmp_path.iterdir()) == []
+
+
+@pytest.mark.skipif(os.geteuid() == 0, reason="root writes into read-only folders")
+def test_a_read_only_parent_exits_2(tiny, tmp_path):
+    tmp_path.chmod(0o500)
+    try:
+        result = _run(tiny, tmp_path / "report")
+    finally:
+        tmp_path.chmod(0o700)
+    assert result.exit_code == 2, result.output
+    assert "cannot write OUTDIR" in result.output
+
+
+def test_a_read_only_file_system_exits_2(tiny, tmp_path, monkeypatch):
+    # Simulated (the tests may run as root, for whom a chmod-ed folder stays writable): the
+    # probe meets what a read-only mount answers, errno EROFS.
+    def read_only(*args, **kwargs):
+        raise OSError(errno.EROFS, os.strerror(errno.EROFS))
+
+    monkeypatch.setattr("sigreport.report.outdir.tempfile.mkdtemp", read_only)
+    result = _run(tiny, tmp_path / "report")
+    assert result.exit_code == 2, result.output
+    assert "cannot write OUTDIR" in result.output and "Read-only file system" in result.output
+
+
+@pytest.mark.slow
+def test_a_disk_that_fills_up_while_writing_exits_2_and_leaves_nothing(tiny, tmp_path, monkeypatch):
+    real_write_text = Path.write_text
+
+    def full(self, data, *args, **kwargs):
+        if self.name == "report.html":  # late: most files are already written
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(self))
+        return real_write_text(self, data, *args, **kwargs)
+
+    monkeypatch.setattr(Path, "write_text", full)
+    result = _run(tiny, tmp_path / "report")
+    assert result.exit_code == 2, result.output
+    assert "No space left on device (report.html)" in result.output
+    assert list(tmp_path.iterdir()) == []
