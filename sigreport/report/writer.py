@@ -220,14 +220,15 @@ def _install(temp: Path, out_dir: Path, *, force: bool) -> None:
         os.rename(out_dir, aside)
     except OSError as exc:
         raise _cannot_write(out_dir, exc) from None
-    problem = replace_problem(aside)
-    if problem is not None:
-        os.rename(aside, out_dir)
-        raise InputError(problem.replace(shown(aside), shown(out_dir)))
     try:
+        problem = replace_problem(aside)
+        if problem is not None:
+            raise InputError(problem.replace(shown(aside), shown(out_dir)))
         os.rename(temp, out_dir)
     except BaseException as exc:
-        os.rename(aside, out_dir)
+        # Refused, failed or interrupted (Ctrl-C, SIGTERM): the old folder goes back.
+        if not os.path.lexists(out_dir):
+            os.rename(aside, out_dir)
         if isinstance(exc, OSError):
             raise _cannot_write(out_dir, exc) from None
         raise

@@ -329,3 +329,22 @@ def test_write_mark_lists_what_is_in_the_folder(tmp_path):
     write_mark(tmp_path, kind="report")
     assert json.loads((tmp_path / MARK_NAME).read_text(encoding="utf-8"))["files"] == ["a/b.txt"]
     assert is_report_folder(tmp_path)
+
+
+def test_an_interrupt_while_replacing_puts_the_old_folder_back(
+    tmp_path, findings, key_slices, study, monkeypatch
+):
+    out = tmp_path / "report"
+    write_report(out, findings, key_slices[:1], study)
+    old = {p.relative_to(out): p.read_bytes() for p in out.rglob("*") if p.is_file()}
+    real_problem = writer.replace_problem
+
+    def interrupted(folder, **kwargs):
+        real_problem(folder, **kwargs)
+        raise KeyboardInterrupt  # after the old folder was moved aside
+
+    monkeypatch.setattr(writer, "replace_problem", interrupted)
+    with pytest.raises(KeyboardInterrupt):
+        write_report(out, findings, key_slices, study, force=True)
+    assert {p.relative_to(out): p.read_bytes() for p in out.rglob("*") if p.is_file()} == old
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["report"]
