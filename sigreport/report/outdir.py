@@ -256,9 +256,10 @@ def _probe(out: Path, target: Path) -> None:
 # The mark
 
 
-def _entries(folder: Path, *, limit: int | None = None) -> Iterator[str]:
+def _entries(folder: Path, *, limit: int | None = None, skip_own: bool = False) -> Iterator[str]:
     """Every non-folder entry under ``folder`` (links are not followed), as relative POSIX
-    paths; stops after ``limit`` entries."""
+    paths; stops after ``limit`` entries. With ``skip_own``, a sub-folder that is itself the
+    tool's own (a report inside a demo folder) answers for itself and is skipped."""
     pending = [(folder, "")]
     count = 0
     while pending:
@@ -267,7 +268,9 @@ def _entries(folder: Path, *, limit: int | None = None) -> Iterator[str]:
             for entry in listing:
                 relative = prefix + entry.name
                 if entry.is_dir(follow_symlinks=False):
-                    pending.append((Path(entry.path), relative + "/"))
+                    sub = Path(entry.path)
+                    if not (skip_own and _read_mark(sub) and replace_problem(sub) is None):
+                        pending.append((sub, relative + "/"))
                     continue
                 yield relative
                 count += 1
@@ -325,7 +328,7 @@ def replace_problem(folder: Path, *, kind: str = "report") -> str | None:
             )
         listed = set(mark["files"]) | {MARK_NAME}
         foreign = []
-        for name in _entries(folder):
+        for name in _entries(folder, skip_own=True):
             if name not in listed:
                 foreign.append(name)
                 if len(foreign) > _LISTED_FOREIGN:

@@ -348,3 +348,19 @@ def test_an_interrupt_while_replacing_puts_the_old_folder_back(
         write_report(out, findings, key_slices, study, force=True)
     assert {p.relative_to(out): p.read_bytes() for p in out.rglob("*") if p.is_file()} == old
     assert sorted(p.name for p in tmp_path.iterdir()) == ["report"]
+
+
+def test_a_marked_report_inside_a_marked_folder_answers_for_itself(tmp_path):
+    # A demo folder whose report was written again with other files since the demo's mark.
+    demo = tmp_path / "demo"
+    (demo / "report").mkdir(parents=True)
+    (demo / "case.toml").write_text("", encoding="utf-8")
+    (demo / "report" / "a.png").write_bytes(b"a")
+    write_mark(demo / "report", kind="report")
+    write_mark(demo, kind="demo")
+    (demo / "report" / "a.png").unlink()
+    (demo / "report" / "b.png").write_bytes(b"b")
+    write_mark(demo / "report", kind="report")
+    assert is_report_folder(demo)
+    (demo / "report" / "mine.txt").write_text("not ours", encoding="utf-8")
+    assert not is_report_folder(demo)
