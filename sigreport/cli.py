@@ -8,7 +8,6 @@ traceback); 1 a bug (the traceback is kept in OUTDIR/error.log).
 from __future__ import annotations
 
 import json
-import shutil
 import sys
 import traceback
 from pathlib import Path
@@ -16,17 +15,19 @@ from typing import Annotated
 
 import typer
 from rich.console import Console
-from rich.markup import escape
+from rich.text import Text
 
 from sigreport import __version__
 from sigreport.errors import InputError
+from sigreport.safetext import terminal_text
 
 app = typer.Typer(
     add_completion=False,
     no_args_is_help=True,
     help="Signal-behaviour tables and draft reports for lesions on a DICOM MR study.",
 )
-err = Console(stderr=True, highlight=False)
+# Nothing printed is ever read as rich markup: values are data (see _say).
+err = Console(stderr=True, highlight=False, markup=False)
 
 LexiconOption = Annotated[
     Path | None,
@@ -39,25 +40,86 @@ LexiconOption = Annotated[
 ]
 
 
+def _say(*parts: str | tuple[str, str], end: str = "\n") -> None:
+    """Print on stderr: plain strings are data (control characters stripped, never read as
+    markup), ``(text, style)`` pairs are the tool's own styled words."""
+    line = Text.assemble(
+        *(part if isinstance(part, tuple) else terminal_text(part) for part in parts)
+    )
+    err.print(line, soft_wrap=True, highlight=False, end=end)
+
+
 def _fail(message: str) -> typer.Exit:
-    err.print(f"[bold red]sigreport:[/] {escape(message)}", markup=True, soft_wrap=True)
+    _say(("sigreport:", "bold red"), " ", message)
     return typer.Exit(2)
 
 
 def _bug(out_dir: Path | None) -> typer.Exit:
-    """An unexpected error: keep the traceback where the user can send it."""
-    text = traceback.format_exc()
-    kept = None
-    if out_dir is not None and not out_dir.exists():
+    """An unexpected error: keep the traceback where the user can send it. Never raises."""
+    text = f"sigreport {__version__}\n{traceback.format_exc()}"
+    try:
+        kept, problems = _keep_traceback(out_dir, text)
+    except Exception as exc:  # noqa: BLE001 - the handler of last resort must not fail
+        kept, problems = None, [repr(exc)]
+    try:
+        _say(f"sigreport: internal error: {sys.exc_info()[1]!r}")
+        if kept is not None:
+            _say(f"the traceback is in {kept}")
+        else:
+            _say(f"could not write error.log ({'; '.join(problems)}); the traceback:\n{text}")
+    except Exception:  # noqa: BLE001
+        sys.stderr.write(text)
+    return typer.Exit(1)
+
+
+def _keep_traceback(out_dir: Path | None, text: str) -> tuple[Path | None, list[str]]:
+    """Write ``text`` to OUTDIR/error.log when OUTDIR does not exist yet (the folder is marked as
+    the tool's own); else beside OUTDIR as ``<name>.error.log`` (never over an existing file);
+    else in the system's temporary folder. Returns the file, or None and why each place failed."""
+    import tempfile
+
+    from sigreport.report.outdir import write_mark
+
+    problems: list[str] = []
+    if out_dir is not None:
         try:
             out_dir.mkdir(parents=True)
-            (out_dir / "error.log").write_text(f"sigreport {__version__}\n{text}", encoding="utf-8")
-            kept = out_dir / "error.log"
-        except OSError:
-            kept = None
-    err.print(f"sigreport: internal error: {sys.exc_info()[1]!r}", markup=False)
-    err.print(f"the traceback is in {kept}" if kept else text, markup=False)
-    return typer.Exit(1)
+        except OSError as exc:
+            problems.append(f"{_short(out_dir)}: {exc.strerror or exc}")
+        else:
+            try:
+                log = out_dir / "error.log"
+                log.write_text(text, encoding="utf-8")
+                write_mark(out_dir, kind="error")
+                return log, problems
+            except OSError as exc:
+                problems.append(f"{_short(out_dir)}: {exc.strerror or exc}")
+        stem = out_dir.name[:100] or "sigreport"
+        for n in range(1, 10):
+            log = out_dir.parent / (f"{stem}.error.log" if n == 1 else f"{stem}.error-{n}.log")
+            try:
+                with log.open("x", encoding="utf-8") as handle:
+                    handle.write(text)
+                return log, problems
+            except FileExistsError:
+                continue
+            except OSError as exc:
+                problems.append(f"{_short(log)}: {exc.strerror or exc}")
+                break
+    try:
+        handle_fd, name = tempfile.mkstemp(prefix="sigreport-error-", suffix=".log")
+        with open(handle_fd, "w", encoding="utf-8") as handle:
+            handle.write(text)
+        return Path(name), problems
+    except OSError as exc:
+        problems.append(f"temporary folder: {exc.strerror or exc}")
+    return None, problems
+
+
+def _short(path: Path) -> str:
+    from sigreport.report.outdir import shown
+
+    return shown(path, 80)
 
 
 def _version(value: bool) -> None:
@@ -94,7 +156,7 @@ def scan(
     if as_json:
         typer.echo(json.dumps(scan_to_json(index), indent=2))
     else:
-        print_scan_table(index, Console(highlight=False))
+        print_scan_table(index, Console(highlight=False, markup=False))
     if not index.stacks:
         raise _fail(f"no usable MR series under {study_dir}")
 
@@ -135,7 +197,7 @@ def report(
     except Exception:
         raise _bug(out) from None
     _print_summary(run.findings)
-    typer.echo(str(run.report_html))
+    typer.echo(terminal_text(run.report_html))
 
 
 @app.command()
@@ -158,32 +220,37 @@ def demo(
 ) -> None:
     """Build the bundled synthetic demo study and run `report` on it; print where the report is."""
     from sigreport.pipeline import run_report
+    from sigreport.report.outdir import exit_on_termination, prepare_folder, write_mark
     from sigreport.synth import generate_study
 
-    if out.exists() and (not out.is_dir() or any(out.iterdir())):
-        if not force:
-            raise _fail(f"{out} exists and is not empty; use --force to replace it")
-        if out.is_dir():
-            shutil.rmtree(out)
-        else:
-            out.unlink()
+    try:
+        prepare_folder(out, kind="demo", force=force)
+    except InputError as exc:
+        raise _fail(str(exc)) from None
     say = _status_printer()
     try:
-        say(f"generating the {scenario} demo study in {out}")
-        study = generate_study(scenario, out, seed=seed)
-        run = run_report(
-            study.case_path,
-            out / "report",
-            study_dir=study.study_dir,
-            site_lexicon=site_lexicon,
-            progress=say,
-        )
+        with exit_on_termination():
+            try:
+                say(f"generating the {scenario} demo study in {out}")
+                study = generate_study(scenario, out, seed=seed)
+                run = run_report(
+                    study.case_path,
+                    out / "report",
+                    study_dir=study.study_dir,
+                    site_lexicon=site_lexicon,
+                    progress=say,
+                )
+            finally:
+                # Whatever is in the folder now was written by this run: mark it as the
+                # tool's own, so that --force may replace it later.
+                if out.is_dir():
+                    write_mark(out, kind="demo")
     except InputError as exc:
         raise _fail(str(exc)) from None
     except Exception:
         raise _bug(out / "report") from None
     _print_summary(run.findings)
-    typer.echo(str(run.report_html))
+    typer.echo(terminal_text(run.report_html))
 
 
 # --------------------------------------------------------------------------------------------
@@ -191,7 +258,7 @@ def demo(
 
 def _status_printer():  # type: ignore[no-untyped-def]
     def say(message: str) -> None:
-        err.print(f"[dim]…[/] {escape(message)}", markup=True, highlight=False)
+        _say(("…", "dim"), " ", message)
 
     return say
 
@@ -227,18 +294,11 @@ class _progress_bar:
 
 def _print_summary(findings: dict) -> None:  # type: ignore[type-arg]
     warnings = [q for q in findings.get("qc", []) if q.get("level") in ("warning", "error")]
-    err.print(
-        f"{len(findings.get('lesions', []))} lesion(s), {len(warnings)} QC warning(s)",
-        highlight=False,
-    )
+    _say(f"{len(findings.get('lesions', []))} lesion(s), {len(warnings)} QC warning(s)")
     for note in warnings:
-        err.print(
-            f"  [yellow]warning[/] {escape(note['code'])}: {escape(note['message'])}",
-            markup=True,
-            highlight=False,
-        )
+        _say("  ", ("warning", "yellow"), " ", f"{note['code']}: {note['message']}")
     for caution in findings.get("cautions", []):
-        err.print(f"  [bold]caution[/] {escape(caution)}", markup=True, highlight=False)
+        _say("  ", ("caution", "bold"), " ", str(caution))
 
 
 def main() -> None:

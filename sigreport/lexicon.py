@@ -39,7 +39,8 @@ def site_dir(site: Path | str | None = None) -> Path | None:
         return None
     path = Path(chosen).expanduser()
     if not path.is_dir():
-        raise InputError(f"lexicon folder {path} does not exist or is not a folder")
+        what = "is a file, not a folder" if path.exists() else "does not exist"
+        raise InputError(f"lexicon folder {path} {what}")
     return path
 
 

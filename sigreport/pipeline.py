@@ -229,6 +229,7 @@ def run_report(
     from sigreport.ingest import index_study, load_stack
     from sigreport.measure import characterize, load_rules, measure_roi, noise_sigma
     from sigreport.report import write_report
+    from sigreport.report.outdir import check_outdir, report_inputs
     from sigreport.rois import (
         build_region,
         load_case,
@@ -247,13 +248,7 @@ def run_report(
         raise InputError(
             f'{case.path.name}: no study folder: give STUDY_DIR or set study = "..." in the case file'
         )
-    out_dir = Path(out_dir)
-    if out_dir.exists() and not force:
-        raise InputError(f"{out_dir} exists; use --force to replace it")
-    if _inside(out_dir, Path(study_dir)):
-        raise InputError(
-            f"{out_dir} is inside the study folder {study_dir}; the input is never written to"
-        )
+    out_dir = check_outdir(out_dir, inputs=report_inputs(case, Path(study_dir), site), force=force)
 
     _say(progress, f"indexing {study_dir}")
     index = index_study(Path(study_dir), site_lexicon=site)
@@ -396,14 +391,6 @@ def run_report(
         force=force,
     )
     return ReportRun(out_dir=out_dir, report_html=html, findings=findings)
-
-
-def _inside(path: Path, folder: Path) -> bool:
-    try:
-        path.resolve().relative_to(folder.resolve())
-    except ValueError:
-        return False
-    return True
 
 
 def _overlap_notes(case: Case, samples: Mapping[tuple[str, Role], Any], role: Role) -> list[QcNote]:

@@ -6,8 +6,10 @@ from typing import Any
 
 from rich.console import Console
 from rich.table import Table
+from rich.text import Text
 
 from sigreport.model import StudyIndex
+from sigreport.safetext import terminal_text
 
 SCAN_SCHEMA = "sigreport-scan/1"
 
@@ -43,31 +45,42 @@ def scan_to_json(index: StudyIndex) -> dict[str, Any]:
 
 def print_scan_table(index: StudyIndex, console: Console) -> None:
     """Print the stacks (series number, stack, description, role, reason, size, spacing,
-    warnings count), then the skipped files and their reasons."""
-    table = Table(title=f"Study {index.study_dir}", show_lines=False)
+    warnings count), then the skipped files and their reasons. Header values and paths are
+    printed as data: never read as console markup, control characters removed
+    (:func:`sigreport.safetext.terminal_text`)."""
+    table = Table(title=_plain(f"Study {index.study_dir}"), show_lines=False)
     for name in ("#", "stack", "description", "role", "reason", "size", "spacing mm", "warn"):
         table.add_column(name, overflow="fold")
     for s in index.stacks:
         table.add_row(
-            "" if s.series_number is None else str(s.series_number),
-            s.stack or "",
-            s.description,
-            f"{s.role.value} ({s.confidence:.2f})",
-            s.role_reason,
-            "x".join(str(v) for v in s.size),
-            " x ".join(f"{v:.3g}" for v in s.spacing_mm),
-            str(len(s.warnings)),
+            *(
+                _plain(cell)
+                for cell in (
+                    "" if s.series_number is None else str(s.series_number),
+                    s.stack or "",
+                    s.description,
+                    f"{s.role.value} ({s.confidence:.2f})",
+                    s.role_reason,
+                    "x".join(str(v) for v in s.size),
+                    " x ".join(f"{v:.3g}" for v in s.spacing_mm),
+                    str(len(s.warnings)),
+                )
+            )
         )
     console.print(table)
     if not index.stacks:
-        console.print("No usable MR image stacks found.")
+        console.print(_plain("No usable MR image stacks found."))
     for warning in index.warnings:
-        console.print(f"study: {warning}", markup=False)
+        console.print(_plain(f"study: {warning}"))
     for s in index.stacks:
         for warning in s.warnings:
             label = f"series {s.series_number}" + (f" [{s.stack}]" if s.stack else "")
-            console.print(f"{label}: {warning}", markup=False, highlight=False)
+            console.print(_plain(f"{label}: {warning}"))
     if index.skipped:
-        console.print(f"Skipped {len(index.skipped)} file(s):")
+        console.print(_plain(f"Skipped {len(index.skipped)} file(s):"))
         for f in index.skipped:
-            console.print(f"  {f.path}: {f.reason}", markup=False, highlight=False)
+            console.print(_plain(f"  {f.path}: {f.reason}"))
+
+
+def _plain(value: object) -> Text:
+    return Text(terminal_text(value))

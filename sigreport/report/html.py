@@ -12,8 +12,9 @@ from markupsafe import Markup
 
 from sigreport.report.images import lesion_points, ratio_plot_svg
 from sigreport.report.tables import ordered_roles, series_by_role
-from sigreport.report.text import environment
+from sigreport.report.text import environment, render_template
 from sigreport.report.wording import Wording
+from sigreport.safetext import clean_strings
 
 
 def data_uri(png: bytes) -> str:
@@ -29,7 +30,9 @@ def render_html(
     site: Path | str | None = None,
 ) -> str:
     """The page. ``images`` maps a lesion id to its key images in display order, each a dict
-    with ``png`` (bytes), ``role`` and ``file`` (the PNG's name under images/)."""
+    with ``png`` (bytes), ``role`` and ``file`` (the PNG's name under images/). Strings of
+    ``findings`` are cleaned as in :func:`~sigreport.report.text.report_context`."""
+    findings = clean_strings(findings)
     series = series_by_role(findings)
     by_id = {str(lesion.get("id")): lesion for lesion in findings.get("lesions", [])}
     lesions = []
@@ -60,4 +63,4 @@ def render_html(
         )
         lesions.append({**lesion, "images": strip, "plot": plot})
     env = environment(site, autoescape=True)
-    return env.get_template("report.html.j2").render(**{**context, "lesions": lesions})
+    return render_template(env, "report.html.j2", {**context, "lesions": lesions})

@@ -16,21 +16,49 @@ from pathlib import Path
 from typing import Any
 
 import jinja2
+from jinja2 import nodes
+from jinja2.sandbox import ImmutableSandboxedEnvironment, SecurityError
 
 from sigreport import lexicon
+from sigreport.errors import InputError
 from sigreport.report.tables import ordered_roles, series_by_role, table_rows
 from sigreport.report.wording import Phrases, Wording, fill, role_sort_key
+from sigreport.safetext import clean_strings
 
 TEXT_WIDTH = 100
 
 
+class _LexiconEnvironment(ImmutableSandboxedEnvironment):
+    """jinja2's sandbox (no access to Python internals: attributes starting with ``_``, the
+    globals of functions, mutation of the values handed in); with autoescaping on, a template
+    may also not turn it off (``{% autoescape false %}``) nor mark text as ``safe``."""
+
+    def _parse(self, source: str, name: str | None, filename: str | None) -> nodes.Template:
+        tree = super()._parse(source, name, filename)
+        if self.autoescape:
+            for node in tree.find_all((nodes.EvalContextModifier, nodes.Filter)):
+                if isinstance(node, nodes.Filter) and node.name != "safe":
+                    continue
+                raise jinja2.TemplateSyntaxError(
+                    "an HTML template may not turn autoescaping off or mark text as safe",
+                    node.lineno,
+                    name,
+                    filename,
+                )
+        return tree
+
+
 def environment(site: Path | str | None = None, *, autoescape: bool = False) -> jinja2.Environment:
-    """A jinja2 environment over the lexicon's template folders (site first), strict about
-    undefined names; ``autoescape`` for HTML."""
+    """A sandboxed jinja2 environment over the lexicon's template folders (site first), strict
+    about undefined names; ``autoescape`` for HTML.
+
+    Lexicon templates are untrusted data: they are rendered in jinja2's
+    ``ImmutableSandboxedEnvironment``, so a site template cannot reach Python (docs/outputs.md).
+    """
     loader = jinja2.ChoiceLoader(
         [jinja2.FileSystemLoader(str(folder)) for folder in lexicon.template_dirs(site)]
     )
-    env = jinja2.Environment(
+    env = _LexiconEnvironment(
         loader=loader,
         undefined=jinja2.StrictUndefined,
         autoescape=autoescape,
@@ -41,6 +69,32 @@ def environment(site: Path | str | None = None, *, autoescape: bool = False) -> 
     env.filters["md"] = md_escape
     env.filters["wrap"] = wrap
     return env
+
+
+def render_template(env: jinja2.Environment, name: str, context: Mapping[str, Any]) -> str:
+    """Render lexicon template ``name``; a template that is broken, uses an undefined name or
+    reaches for Python internals is an ``InputError`` naming the template and its file."""
+    try:
+        template = env.get_template(name)
+        return template.render(**context)
+    except jinja2.TemplateNotFound:
+        raise InputError(f"lexicon template {name} not found") from None
+    except (jinja2.TemplateError, RecursionError) as exc:
+        where = getattr(exc, "filename", None) or _template_file(env, name)
+        line = getattr(exc, "lineno", None)
+        at = f"{where}" + (f", line {line}" if line else "")
+        kind = "unsafe" if isinstance(exc, SecurityError) else "unusable"
+        raise InputError(
+            f"lexicon template {name} ({at}) is {kind}: {type(exc).__name__}: {exc}"
+        ) from exc
+
+
+def _template_file(env: jinja2.Environment, name: str) -> str:
+    try:
+        _, filename, _ = env.loader.get_source(env, name)  # type: ignore[union-attr]
+    except Exception:  # noqa: BLE001 - only for the message
+        return name
+    return filename or name
 
 
 _MD_SPECIAL = re.compile(r"([\\`*_\[\]|#])")
@@ -270,7 +324,13 @@ def text_table(
 def report_context(
     findings: Mapping[str, Any], wording: Wording, phrases: Phrases
 ) -> dict[str, Any]:
-    """Everything the templates use, as plain strings, lists and dicts."""
+    """Everything the templates use, as plain strings, lists and dicts.
+
+    Every string of ``findings`` (header values, case-file text, qc messages) is first made
+    one line without control characters (:func:`sigreport.safetext.one_line`): a CR/LF in an
+    AccessionNumber cannot add a line to report.txt, nor a NUL reach report.html.
+    """
+    findings = clean_strings(findings)
     rows = display_rows(findings)
     lesions = []
     for lesion in findings.get("lesions", []):
@@ -356,6 +416,6 @@ def report_context(
 def render_text(context: Mapping[str, Any], site: Path | str | None = None) -> tuple[str, str]:
     """(report.md, report.txt) rendered from the lexicon templates."""
     env = environment(site)
-    markdown = env.get_template("report.md.j2").render(**context)
-    plain = env.get_template("report.txt.j2").render(**context)
+    markdown = render_template(env, "report.md.j2", context)
+    plain = render_template(env, "report.txt.j2", context)
     return markdown, plain

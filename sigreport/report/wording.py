@@ -8,6 +8,7 @@ falls back to the finding's own grade and to the behaviour key itself.
 
 from __future__ import annotations
 
+import string
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -97,6 +98,11 @@ def load_wording(site: Path | str | None = None) -> Wording:
         for key, value in parsed[section].items():
             if not isinstance(value, str):
                 raise InputError(f"{path} [{section}] {key}: expected a string, got {value!r}")
+    for key, value in parsed["sentences"].items():
+        try:
+            placeholders(value)
+        except ValueError as exc:
+            raise InputError(f"{path} [sentences] {key}: {exc}") from None
     low, high = parsed["plot"]["iso_low"], parsed["plot"]["iso_high"]
     if not all(isinstance(v, int | float) and not isinstance(v, bool) for v in (low, high)):
         raise InputError(f"{path} [plot]: iso_low and iso_high must be numbers")
@@ -113,10 +119,34 @@ def load_wording(site: Path | str | None = None) -> Wording:
     )
 
 
+def placeholders(template: str) -> list[str]:
+    """The ``{name}`` placeholders of a wording template.
+
+    Raises
+    ------
+    ValueError
+        When a placeholder is anything but a plain name: attribute or index access
+        (``{x.__class__}``, ``{x[0]}``), a conversion (``{x!r}``) or a format spec
+        (``{x:>99999999}``). Wording is untrusted data; ``str.format`` would follow those.
+    """
+    names = []
+    for _, field, spec, conversion in string.Formatter().parse(template):
+        if field is None:
+            continue
+        if not field.isidentifier() or spec or conversion:
+            shown = "{" + field + (f"!{conversion}" if conversion else "")
+            shown += (f":{spec}" if spec else "") + "}"
+            raise ValueError(f"placeholder {shown} is not a plain {{name}}")
+        names.append(field)
+    return names
+
+
 def fill(template: str, where: str, **values: str) -> str:
-    """``template.format(**values)``, with an ``InputError`` naming the lexicon key when the
-    site's wording uses a placeholder the report does not provide."""
+    """``template`` with its ``{name}`` placeholders replaced by ``values``, with an
+    ``InputError`` naming the lexicon key when the site's wording uses a placeholder the report
+    does not provide, or one that is not a plain name."""
     try:
+        placeholders(template)
         return template.format(**values)
     except (KeyError, IndexError, ValueError) as exc:
         raise InputError(

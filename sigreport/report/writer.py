@@ -1,9 +1,12 @@
 """The report folder (interface.md, OUTDIR), written atomically.
 
 Everything is built in a hidden sibling folder and renamed onto ``out_dir`` once complete; on
-any failure the temporary folder is removed and the error re-raised, so a failed run leaves no
-half-written report behind. With ``force`` an existing folder is replaced only after the new one
-is complete.
+any failure (SIGINT, SIGTERM and SIGHUP included) the temporary folder is removed and the error
+re-raised, so a failed run leaves no half-written report behind. The finished folder carries the
+tool's mark (:mod:`sigreport.report.outdir`). Without ``force`` the folder is claimed with an
+exclusive ``mkdir`` at the end, so a run never replaces a folder that appeared while it was
+writing; with ``force`` an existing folder is replaced only after the new one is complete, and
+only when it is the tool's own (checked again once it has been moved aside).
 """
 
 from __future__ import annotations
@@ -20,6 +23,14 @@ from sigreport.errors import InputError
 from sigreport.model import KeySlice, Stack
 from sigreport.report.html import render_html
 from sigreport.report.images import png_bytes, render_key_image, safe_name
+from sigreport.report.outdir import (
+    check_outdir,
+    exit_on_termination,
+    hidden_sibling,
+    replace_problem,
+    shown,
+    write_mark,
+)
 from sigreport.report.sr import build_sr, write_sr
 from sigreport.report.tables import rows_to_csv, table_rows
 from sigreport.report.text import render_text, report_context
@@ -106,7 +117,8 @@ def write_report(
     site_lexicon:
         A site lexicon folder (wording, templates, characterization rules).
     force:
-        Replace an existing ``out_dir`` (only once the new report is complete).
+        Replace an existing ``out_dir`` (only once the new report is complete, and only a
+        folder the tool marked as its own).
 
     Returns
     -------
@@ -116,24 +128,40 @@ def write_report(
     Raises
     ------
     InputError
-        When ``out_dir`` exists and ``force`` is false, or the site lexicon is unusable.
+        When ``out_dir`` exists and ``force`` is false, exists but is not the tool's own folder,
+        appeared while writing, cannot be written (permissions, space, names too long), or the
+        site lexicon is unusable.
     """
     out_dir = Path(out_dir)
-    if out_dir.exists() and not force:
-        raise InputError(f"output folder {out_dir} exists; use --force to replace it")
-    if out_dir.exists() and not out_dir.is_dir():
-        raise InputError(f"output path {out_dir} exists and is not a folder")
-    parent = out_dir.parent
-    parent.mkdir(parents=True, exist_ok=True)
-    temp = parent / f".{out_dir.name}.partial-{secrets.token_hex(6)}"
-    temp.mkdir()
+    check_outdir(out_dir, force=force)
     try:
-        _build(temp, findings, key_slices, stacks, site_lexicon)
-        _replace(temp, out_dir)
-    except BaseException:
-        shutil.rmtree(temp, ignore_errors=True)
-        raise
+        out_dir.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise _cannot_write(out_dir, exc) from None
+    temp = hidden_sibling(out_dir, "partial", secrets.token_hex(6))
+    with exit_on_termination():
+        try:
+            temp.mkdir()
+        except OSError as exc:
+            raise _cannot_write(out_dir, exc) from None
+        try:
+            try:
+                _build(temp, findings, key_slices, stacks, site_lexicon)
+                write_mark(temp, kind="report")
+            except OSError as exc:
+                raise _cannot_write(out_dir, exc) from None
+            _install(temp, out_dir, force=force)
+        except BaseException:
+            shutil.rmtree(temp, ignore_errors=True)
+            raise
     return out_dir / "report.html"
+
+
+def _cannot_write(out_dir: Path, exc: OSError) -> InputError:
+    where = f" ({Path(exc.filename).name})" if exc.filename else ""
+    return InputError(
+        f"cannot write the report folder {shown(out_dir)}: {exc.strerror or exc}{where}"
+    )
 
 
 def _build(
@@ -162,17 +190,53 @@ def _build(
     write_sr(folder / "sr.dcm", build_sr(findings, key_slices, stacks))
 
 
-def _replace(temp: Path, out_dir: Path) -> None:
-    """Move the complete ``temp`` onto ``out_dir``; an old ``out_dir`` is first renamed aside
-    and removed only once the new one is in place (restored if the rename fails)."""
-    if not out_dir.exists():
-        os.replace(temp, out_dir)
-        return
-    aside = out_dir.parent / f".{out_dir.name}.old-{secrets.token_hex(6)}"
-    os.replace(out_dir, aside)
+def _install(temp: Path, out_dir: Path, *, force: bool) -> None:
+    """Put the complete ``temp`` in place of ``out_dir``.
+
+    An absent ``out_dir`` is claimed with ``mkdir`` (atomic: of two runs, one wins) and ``temp``
+    renamed onto the empty folder. With ``force``, an existing folder is first renamed aside,
+    checked to be the tool's own (after the move, so nothing can change it between the check and
+    the deletion), and removed only once the new one is in place; it is restored otherwise.
+    """
     try:
-        os.replace(temp, out_dir)
-    except BaseException:
-        os.replace(aside, out_dir)
+        os.mkdir(out_dir)
+    except FileExistsError:
+        if not force:
+            raise InputError(
+                f"{shown(out_dir)} appeared while this run was writing it (another run?); "
+                "it was left as it is and this run's report was not kept"
+            ) from None
+    except OSError as exc:
+        raise _cannot_write(out_dir, exc) from None
+    else:
+        try:
+            os.rename(temp, out_dir)
+        except OSError as exc:
+            _remove_empty(out_dir)
+            raise _cannot_write(out_dir, exc) from None
+        return
+    aside = hidden_sibling(out_dir, "old", secrets.token_hex(6))
+    try:
+        os.rename(out_dir, aside)
+    except OSError as exc:
+        raise _cannot_write(out_dir, exc) from None
+    try:
+        problem = replace_problem(aside)
+        if problem is not None:
+            raise InputError(problem.replace(shown(aside), shown(out_dir)))
+        os.rename(temp, out_dir)
+    except BaseException as exc:
+        # Refused, failed or interrupted (Ctrl-C, SIGTERM): the old folder goes back.
+        if not os.path.lexists(out_dir):
+            os.rename(aside, out_dir)
+        if isinstance(exc, OSError):
+            raise _cannot_write(out_dir, exc) from None
         raise
     shutil.rmtree(aside, ignore_errors=True)
+
+
+def _remove_empty(folder: Path) -> None:
+    try:
+        os.rmdir(folder)
+    except OSError:
+        pass

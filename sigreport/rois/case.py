@@ -13,6 +13,7 @@ hold absolute paths.
 from __future__ import annotations
 
 import math
+import stat
 import tomllib
 from pathlib import Path
 from typing import Any
@@ -226,8 +227,12 @@ def _parse_roi(
                 ok = False
             else:
                 mask_path = (base / raw_mask).resolve()
-                if not mask_path.is_file():
+                problem = _not_a_file(mask_path)
+                if problem == "not found":
                     problems.add(where, f"mask file {raw_mask} not found (looked for {mask_path})")
+                    ok = False
+                elif problem:
+                    problems.add(where, f"mask {raw_mask} {problem} ({mask_path})")
                     ok = False
                 fields["mask"] = mask_path
         if "segment" in table and shape is RoiShape.MASK:
@@ -313,6 +318,49 @@ def _parse_options(raw: Any, problems: _Problems) -> tuple[bool | None, str | No
     return register, anchor
 
 
+def _not_a_file(path: Path) -> str | None:
+    """Why ``path`` is not a regular file to read ("not found", "is a folder, not a file", ...),
+    or None when it is one."""
+    try:
+        mode = path.stat().st_mode
+    except FileNotFoundError:
+        return "not found"
+    except OSError as exc:
+        return f"cannot be read: {exc.strerror or exc}"
+    if stat.S_ISDIR(mode):
+        return "is a folder, not a file"
+    if not stat.S_ISREG(mode):
+        return "is a device or pipe, not a regular file"
+    return None
+
+
+# Byte order marks (Unicode 15, section 23.8) of the encodings a text editor may have used.
+_UTF16_32_BOMS = (b"\xff\xfe\x00\x00", b"\x00\x00\xfe\xff", b"\xff\xfe", b"\xfe\xff")
+
+
+def _toml_text(raw: bytes, name: str) -> str:
+    """The case file's text. TOML files are UTF-8 (TOML 1.0, "Spec"); a UTF-8 byte order mark
+    is dropped; UTF-16/32 and binary files are refused with what they look like."""
+    if raw.startswith(_UTF16_32_BOMS):
+        raise InputError(
+            f"{name}: is UTF-16 or UTF-32 text (it starts with a byte order mark); a case file "
+            "must be UTF-8: save it as UTF-8"
+        )
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise InputError(
+            f"{name}: not UTF-8 text (byte 0x{raw[exc.start]:02x} at offset {exc.start}); a "
+            "case file is a TOML text file in UTF-8"
+        ) from None
+    if "\x00" in text:
+        raise InputError(
+            f"{name}: holds NUL bytes (UTF-16 without a byte order mark, or not a text file); "
+            "a case file is a TOML text file in UTF-8"
+        )
+    return text.removeprefix("\ufeff")
+
+
 def load_case(path: Path) -> Case:
     """Read and validate a case file.
 
@@ -335,15 +383,19 @@ def load_case(path: Path) -> Case:
     """
     path = Path(path).expanduser().resolve()
     name = path.name
-    if not path.is_file():
-        raise InputError(f"case file {path} not found")
+    problem = _not_a_file(path)
+    if problem == "is a folder, not a file":
+        problem = "is a folder, not a case file"
+    if problem:
+        raise InputError(f"case file {path} {problem}")
     try:
-        with path.open("rb") as handle:
-            data = tomllib.load(handle)
+        raw_bytes = path.read_bytes()
+    except OSError as exc:
+        raise InputError(f"{name}: cannot be read: {exc.strerror or exc}") from None
+    try:
+        data = tomllib.loads(_toml_text(raw_bytes, name))
     except tomllib.TOMLDecodeError as exc:
         raise InputError(f"{name}: not valid TOML: {exc}") from None
-    except OSError as exc:
-        raise InputError(f"{name}: cannot be read: {exc}") from None
 
     base = path.parent
     problems = _Problems(name)
@@ -371,8 +423,10 @@ def load_case(path: Path) -> Case:
             problems.add("", f"lexicon must be a folder path (string), got {_show(raw)}")
         else:
             lexicon = (base / raw).resolve()
-            if not lexicon.is_dir():
+            if not lexicon.exists():
                 problems.add("", f"lexicon folder {raw} not found (looked for {lexicon})")
+            elif not lexicon.is_dir():
+                problems.add("", f"lexicon {raw} is a file, not a folder ({lexicon})")
 
     roles = _parse_roles(data.get("roles", {}), problems)
     register, anchor = _parse_options(data.get("options", {}), problems)

@@ -8,8 +8,10 @@ import sigreport.report.writer as writer
 from sigreport.errors import InputError
 from sigreport.model import KeySlice
 from sigreport.report import write_report
+from sigreport.report.outdir import MARK_NAME
 
 EXPECTED = {
+    MARK_NAME,
     "findings.json",
     "table.csv",
     "report.md",
@@ -55,9 +57,10 @@ def test_existing_folder_is_refused_without_force(tmp_path, findings, key_slices
 
 def test_force_replaces_the_old_folder(tmp_path, findings, key_slices, study):
     out = tmp_path / "report"
-    out.mkdir()
-    (out / "old.txt").write_text("old", encoding="utf-8")
+    write_report(out, findings, key_slices[:1], study)
+    old = {p.name for p in (out / "images").iterdir()}
     write_report(out, findings, key_slices, study, force=True)
+    assert {p.name for p in (out / "images").iterdir()} > old
     assert {p.name for p in out.iterdir()} == EXPECTED
     assert sorted(p.name for p in tmp_path.iterdir()) == ["report"]  # no temp, no old copy
 
@@ -66,12 +69,12 @@ def test_force_keeps_the_old_folder_when_the_new_one_fails(
     tmp_path, findings, key_slices, study, monkeypatch
 ):
     out = tmp_path / "report"
-    out.mkdir()
-    (out / "old.txt").write_text("old", encoding="utf-8")
+    write_report(out, findings, key_slices[:1], study)
+    old = {p.relative_to(out): p.read_bytes() for p in out.rglob("*") if p.is_file()}
     monkeypatch.setattr(writer, "render_html", lambda *a, **k: 1 / 0)
     with pytest.raises(ZeroDivisionError):
         write_report(out, findings, key_slices, study, force=True)
-    assert [p.name for p in out.iterdir()] == ["old.txt"]
+    assert {p.relative_to(out): p.read_bytes() for p in out.rglob("*") if p.is_file()} == old
     assert sorted(p.name for p in tmp_path.iterdir()) == ["report"]
 
 
