@@ -18,7 +18,7 @@ from dataclasses import dataclass
 import numpy as np
 import SimpleITK as sitk
 
-from sigreport.rois.regions import Region
+from sigreport.rois.space import Region
 
 __all__ = [
     "RoiSample",
