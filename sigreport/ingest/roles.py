@@ -1,4 +1,4 @@
-"""Series role inference from acquisition physics (interface.md, Series roles).
+"""Series role inference from acquisition physics (docs/usage.md, Series roles).
 
 The header decides: repetition, echo and inversion time, flip angle, scanning sequence and
 variant, scan options (fat suppression), contrast agent, b-value and image type. The series
@@ -191,7 +191,7 @@ def _infer(acq: Acquisition, description: str, b: RoleBands) -> tuple[Role, str,
     conf_tie = b.number("confidence", "tie_break")
     image_type = {t.upper() for t in acq.image_type}
 
-    # Localizers and screen captures first: never measured (interface.md).
+    # Localizers and screen captures first: never measured (docs/usage.md).
     if image_type & b.words("image_type", "localizer") or _mentions(
         description, b.words("description", "localizer")
     ):

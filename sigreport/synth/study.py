@@ -112,7 +112,7 @@ def _truth_rules() -> dict[str, float]:
 
 
 def _roi_mask(grid: phantom.Grid, roi: RoiPlan) -> np.ndarray:
-    """Voxels whose centre lies inside the ROI (interface.md membership rule)."""
+    """Voxels whose centre lies inside the ROI (docs/usage.md membership rule)."""
     x, y, z = grid.points((slice(None), slice(None), slice(None)))
     c = roi.center_mm
     r = float(roi.radius_mm or 0.0)
@@ -123,7 +123,7 @@ def _roi_mask(grid: phantom.Grid, roi: RoiPlan) -> np.ndarray:
 
 def _series_roi_mask(geo: SeriesGeometry, roi: RoiPlan) -> np.ndarray:
     """Voxels of a series grid (array ``[slice, row, column]``) whose centre lies inside the
-    ROI (interface.md membership rule; PS3.3 C.7.6.2.1.1 voxel centres). Only the index box
+    ROI (docs/usage.md membership rule; PS3.3 C.7.6.2.1.1 voxel centres). Only the index box
     around the ROI is evaluated."""
     cols, rows, slices = geo.size
     axes_dir = np.column_stack([geo.row, geo.column, geo.normal])  # orthonormal
@@ -288,7 +288,7 @@ def generate_study(
         A scenario TOML path, or the name of a bundled demo (see :func:`demo_scenarios`).
     out_dir
         Output folder; must not exist or be empty. Receives ``study/`` (DICOM), ``case.toml``
-        (the interface.md case file) and ``truth.json`` (the expected values, for tests).
+        (the case file of docs/usage.md) and ``truth.json`` (the expected values, for tests).
     seed, motion, field_strength_t
         Override the scenario's values (None: keep them). The output is a deterministic function
         of the scenario and these arguments.
