@@ -436,3 +436,26 @@ def test_grades_follow_the_site_thresholds(written, tmp_path):
     grades = {r: s["grade"] for r, s in analysis.findings["lesions"][0]["signal"].items()}
     assert grades == {"T1": "hypointense", "T2": "isointense", "FLAIR": "hypointense"}
     assert analysis.phrases["L1"].grades["T2"] == "isointense"
+
+
+def test_every_lexicon_table_is_checked_before_any_work(tmp_path):
+    from sigreport import lexicon as files
+
+    site = tmp_path / "site"
+    site.mkdir()
+    text = (files.bundled_dir() / "alignment.toml").read_text(encoding="utf-8")
+    (site / "alignment.toml").write_text(re.sub(r"(?m)^margin_mm = .*$", "", text))
+    with pytest.raises(InputError, match=r"alignment.toml \[registration\]: margin_mm is missing"):
+        load_lexicon(site)
+    (site / "alignment.toml").unlink()
+    (site / "cautions.toml").write_text("cautions = []\n")
+    with pytest.raises(InputError, match="cautions.toml: 'cautions' must be a non-empty list"):
+        load_lexicon(site)
+
+
+def test_the_lexicon_comes_from_the_environment_when_no_site_is_given(tmp_path, monkeypatch):
+    site = _site_with_grades(tmp_path / "env-site", 0.8, 1.2)
+    monkeypatch.setenv("SIGREPORT_LEXICON", str(site))
+    lexicon = load_lexicon()
+    assert lexicon.site == site and lexicon.iso_band == (0.8, 1.2)
+    assert lexicon.rules.thresholds.grade.hyper_min_ratio == 1.2
