@@ -28,7 +28,6 @@ from typing import Any
 import numpy as np
 import SimpleITK as sitk
 
-from sigreport import lexicon as lexicon_files
 from sigreport.align import identity_alignment, register_rigid
 from sigreport.errors import InputError
 from sigreport.ingest import index_study, load_stack
@@ -564,9 +563,8 @@ def run_report(
         Told about each step (:class:`sigreport.model.Progress`).
     """
     case = load_case(Path(case_path))
-    site = site_lexicon if site_lexicon is not None else case.lexicon
-    lexicon_files.site_dir(site)  # a missing site folder is an input error before any work
-    lexicon = load_lexicon(site)
+    # Every lexicon table is validated here, before any work (a missing site folder too).
+    lexicon = load_lexicon(site_lexicon if site_lexicon is not None else case.lexicon)
     study = resolve_study_dir(case, study_dir)
     out_dir = Path(out_dir)
     if out_dir.exists() and not force:
