@@ -1,4 +1,4 @@
-"""The ``sigreport`` command (interface.md, Commands). Thin: each command parses its arguments,
+"""The ``sigreport`` command (docs/usage.md, Commands). Thin: each command parses its arguments,
 calls one library function and prints.
 
 Exit codes: 0 done (warnings are in ``qc``); 2 unusable input (one message on stderr, no
@@ -11,14 +11,17 @@ import json
 import sys
 import traceback
 from pathlib import Path
-from typing import Annotated
+from typing import Annotated, Any
 
 import typer
 from rich.console import Console
+from rich.progress import BarColumn, MofNCompleteColumn, TextColumn
+from rich.progress import Progress as RichProgress
 from rich.text import Text
 
 from sigreport import __version__
 from sigreport.errors import InputError
+from sigreport.model import Progress
 from sigreport.safetext import terminal_text
 
 app = typer.Typer(
@@ -149,7 +152,7 @@ def scan(
     from sigreport.ingest import index_study, print_scan_table, scan_to_json
 
     try:
-        with _progress_bar(enabled=not as_json) as progress:
+        with ProgressDisplay(quiet=as_json) as progress:
             index = index_study(study_dir, progress=progress, site_lexicon=site_lexicon)
     except InputError as exc:
         raise _fail(str(exc)) from None
@@ -183,15 +186,16 @@ def report(
     from sigreport.pipeline import run_report
 
     try:
-        run = run_report(
-            case,
-            out,
-            study_dir=study_dir,
-            register=register,
-            force=force,
-            site_lexicon=site_lexicon,
-            progress=_status_printer(),
-        )
+        with ProgressDisplay() as progress:
+            run = run_report(
+                case,
+                out,
+                study_dir=study_dir,
+                register=register,
+                force=force,
+                site_lexicon=site_lexicon,
+                progress=progress,
+            )
     except InputError as exc:
         raise _fail(str(exc)) from None
     except Exception:
@@ -227,9 +231,8 @@ def demo(
         prepare_folder(out, kind="demo", force=force)
     except InputError as exc:
         raise _fail(str(exc)) from None
-    say = _status_printer()
     try:
-        with exit_on_termination():
+        with exit_on_termination(), ProgressDisplay() as say:
             try:
                 say(f"generating the {scenario} demo study in {out}")
                 study = generate_study(scenario, out, seed=seed)
@@ -256,40 +259,65 @@ def demo(
 # --------------------------------------------------------------------------------------------
 
 
-def _status_printer():  # type: ignore[no-untyped-def]
-    def say(message: str) -> None:
-        _say(("…", "dim"), " ", message)
+class ProgressDisplay:
+    """The progress of every stage on stderr, in the shape every stage reports it
+    (:class:`sigreport.model.Progress`): a line per step, and on a terminal a bar for counted
+    steps (indexing files, loading, registering, measuring, writing).
 
-    return say
+    Messages are shown as text, never as rich markup: they hold paths and header values
+    (series descriptions), which may contain brackets. Off a terminal (a pipe, a log file) a
+    counted step prints its line once, not once per item. ``quiet`` shows nothing.
+    """
 
+    def __init__(self, *, quiet: bool = False, console: Console | None = None) -> None:
+        self.console = console if console is not None else err
+        self.quiet = quiet
+        self._bar: Any = None
+        self._task: Any = None
+        self._last: str | None = None
 
-class _progress_bar:
-    """A progress bar on stderr for long indexing runs (silent when ``enabled`` is False)."""
-
-    def __init__(self, *, enabled: bool) -> None:
-        self.enabled = enabled and err.is_terminal
-        self._progress = None
-        self._task = None
-
-    def __enter__(self):  # type: ignore[no-untyped-def]
-        if not self.enabled:
-            return None
-        from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
-
-        self._progress = Progress(
-            TextColumn("indexing"), BarColumn(), MofNCompleteColumn(), console=err, transient=True
-        )
-        self._progress.start()
-        self._task = self._progress.add_task("index", total=None)
-
-        def update(done: int, total: int) -> None:
-            self._progress.update(self._task, completed=done, total=total)  # type: ignore[union-attr,attr-defined]
-
-        return update
+    def __enter__(self) -> Progress:
+        return self
 
     def __exit__(self, *exc: object) -> None:
-        if self._progress is not None:
-            self._progress.stop()
+        self._stop_bar()
+
+    def __call__(self, message: str, done: int | None = None, total: int | None = None) -> None:
+        if self.quiet:
+            return
+        counted = done is not None and total is not None
+        if counted and self.console.is_terminal:
+            self._show_bar(message, done, total)
+            return
+        if message == self._last:
+            return
+        self._stop_bar()
+        self._last = message
+        self.console.print(
+            Text.assemble(("… ", "dim"), terminal_text(message)), highlight=False, soft_wrap=True
+        )
+
+    def _show_bar(self, message: str, done: int | None, total: int | None) -> None:
+        if self._bar is None:
+            # markup=False: the description is a path or a header value, shown as it is.
+            self._bar = RichProgress(
+                TextColumn("{task.description}", markup=False),
+                BarColumn(),
+                MofNCompleteColumn(),
+                console=self.console,
+                transient=True,
+            )
+            self._bar.start()
+            self._task = self._bar.add_task(terminal_text(message), total=total)
+        self._bar.update(
+            self._task, description=terminal_text(message), completed=done, total=total
+        )
+
+    def _stop_bar(self) -> None:
+        if self._bar is not None:
+            self._bar.stop()
+            self._bar = None
+            self._task = None
 
 
 def _print_summary(findings: dict) -> None:  # type: ignore[type-arg]

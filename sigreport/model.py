@@ -12,11 +12,44 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from enum import StrEnum
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any, Protocol
+
+if TYPE_CHECKING:  # types only: these modules build on this one
+    import SimpleITK as sitk
+
+    from sigreport.lexicon_tables import Lexicon
+    from sigreport.rois.propagate import RoiSample
+    from sigreport.rois.space import Region
+
+
+class Progress(Protocol):
+    """How every stage reports progress: a message, and for a counted step how far it is.
+
+    ``progress("indexing study", 12, 240)`` after the 12th of 240 files; ``progress("registering
+    T2 to T1")`` for a step that is not counted. Messages may hold header values and paths: a
+    display shows them as text, never as markup.
+    """
+
+    def __call__(self, message: str, done: int | None = None, total: int | None = None) -> None: ...
+
+
+def say(
+    progress: Progress | None, message: str, done: int | None = None, total: int | None = None
+) -> None:
+    """Call ``progress`` when there is one."""
+    if progress is not None:
+        progress(message, done, total)
 
 
 class Role(StrEnum):
-    """What a series shows, inferred from its acquisition physics (interface.md, Series roles)."""
+    """What a series shows, inferred from its acquisition physics (docs/usage.md, Series roles).
+
+    Adding a role: a member here, its place in :data:`ROLE_ORDER`, its pairs (if any) in
+    :data:`ENHANCEMENT_PAIRS` / :data:`SUPPRESSION_PAIRS`, its name in the lexicon's
+    ``wording.toml [roles]``, and its inference in ``sigreport.ingest.roles`` (DEVELOPERS.md).
+    The declaration order is the order characterization visits the roles in (its qc notes);
+    reports and tables use :data:`ROLE_ORDER`.
+    """
 
     T1 = "T1"
     T2 = "T2"
@@ -38,6 +71,62 @@ class Role(StrEnum):
     FAT = "FAT"
     SWI = "SWI"
     UNKNOWN = "UNKNOWN"
+
+
+#: Roles in the order a radiologist reads the series: the order of the report's table, plots and
+#: key images, of the signal entries of findings.json, and the order in which series are chosen
+#: for measurement. Every role appears once; UNKNOWN (never measured) is last.
+ROLE_ORDER: tuple[Role, ...] = (
+    Role.T1, Role.T1FS, Role.IP, Role.OP, Role.WATER, Role.FAT, Role.T2, Role.T2FS, Role.PD,
+    Role.FLAIR, Role.STIR, Role.T2STAR, Role.SWI, Role.DWI, Role.ADC, Role.T1POST,
+    Role.T1POSTFS, Role.UNKNOWN,
+)  # fmt: skip
+
+#: Pre -> post contrast pairs for enhancement; the first pair the study has gives the percent
+#: (docs/usage.md, findings.json ``enhancement``).
+ENHANCEMENT_PAIRS: tuple[tuple[Role, Role], ...] = (
+    (Role.T1, Role.T1POST),
+    (Role.T1FS, Role.T1POSTFS),
+)
+
+#: Unsuppressed -> suppressed pairs per suppression kind; the first pair the study has is used
+#: (docs/usage.md, findings.json ``suppression``). STIR nulls every short-T1 tissue, so a fat
+#: flag from a pair ending on STIR is not specific.
+SUPPRESSION_PAIRS: dict[str, tuple[tuple[Role, Role], ...]] = {
+    "fluid": ((Role.T2, Role.FLAIR),),
+    "fat": (
+        (Role.T1, Role.T1FS),
+        (Role.T1POST, Role.T1POSTFS),
+        (Role.T2, Role.T2FS),
+        (Role.T2, Role.STIR),
+    ),
+}
+
+#: Post-contrast roles and the pre-contrast role each is read against (dynamic phases; the pre
+#: phase of a dynamic acquisition).
+PRE_CONTRAST_OF: dict[Role, Role] = {Role.T1POST: Role.T1, Role.T1POSTFS: Role.T1FS}
+#: Roles of fat-suppressed T1 images (a dynamic acquisition keeps its fat suppression).
+FAT_SUPPRESSED_T1: tuple[Role, ...] = (Role.T1FS, Role.T1POSTFS)
+#: The susceptibility-weighted series a T2 pair ends on, preferred first (SWI over T2*).
+SUSCEPTIBILITY_TARGETS: tuple[Role, ...] = (Role.SWI, Role.T2STAR)
+
+
+def role_sort_key(role: str) -> tuple[int, str]:
+    """Sort key putting role names in reading order (:data:`ROLE_ORDER`), unknown names last."""
+    for i, known in enumerate(ROLE_ORDER):
+        if known.value == role:
+            return i, role
+    return len(ROLE_ORDER), role
+
+
+def first_pair(
+    pairs: tuple[tuple[Role, Role], ...], roles: set[Role] | dict[Role, Any]
+) -> tuple[Role, Role] | None:
+    """The first of ``pairs`` whose two roles are both in ``roles``, else None."""
+    for a, b in pairs:
+        if a in roles and b in roles:
+            return a, b
+    return None
 
 
 class Grade(StrEnum):
@@ -349,8 +438,31 @@ class MeasuredStudy:
     noise_sigma: dict[Role, float | None]  # background noise (Gaussian sigma) per role
 
 
+@dataclass(frozen=True)
+class BehaviourPhrase:
+    """A signal-behaviour rule that matched a lesion, in the lexicon's words (behaviour.toml):
+    its stable ``key`` (findings.json ``behaviour``), its neutral ``phrase`` and the usual
+    ``considerations`` (things to consider, never a diagnosis)."""
+
+    key: str
+    phrase: str
+    considerations: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True)
+class LesionPhrases:
+    """The words characterization chose for one lesion, which the report only renders.
+
+    ``grades`` maps a role name to the graded wording of the lesion on that series
+    ("markedly hyperintense"); ``behaviour`` follows the order of findings.json ``behaviour``.
+    """
+
+    grades: dict[str, str] = field(default_factory=dict)
+    behaviour: tuple[BehaviourPhrase, ...] = ()
+
+
 # --------------------------------------------------------------------------------------------
-# Key images (pipeline -> sigreport.report)
+# Key images (sigreport.report.keyslices -> sigreport.report)
 
 
 @dataclass(frozen=True)
@@ -369,3 +481,78 @@ class KeySlice:
     pixel_spacing_mm: tuple[float, float]  # (row spacing, column spacing)
     slice_index: int  # 0-based index along the stack
     sop_instance_uid: str | None = None
+
+
+# --------------------------------------------------------------------------------------------
+# The job's stages (sigreport.pipeline): what each stage hands to the next
+
+
+@dataclass(frozen=True)
+class ReportPlan:
+    """What to measure and how, decided before any pixel is read (``pipeline.plan_report``).
+
+    ``index`` carries the case file's role overrides; ``measured`` is the one stack per role that
+    is measured, in reading order; ``regions`` are the case file's ROIs in patient space, in
+    case-file order; ``qc`` the notes the choices left (study warnings, shared or doubtful
+    roles, skipped files); ``anchor_note`` says which series the ROIs are placed on, and why.
+    """
+
+    case: Case
+    lexicon: Lexicon
+    study_dir: Path
+    index: StudyIndex
+    measured: dict[Role, Stack]
+    anchor_role: Role
+    anchor_reason: str
+    register: bool
+    regions: tuple[Region, ...]
+    qc: tuple[QcNote, ...] = ()
+    anchor_note: QcNote | None = None
+
+    @property
+    def anchor(self) -> Stack:
+        """The stack the ROIs are defined against."""
+        return self.measured[self.anchor_role]
+
+
+@dataclass(frozen=True)
+class AlignedStudy:
+    """Each measured series' alignment to the anchor (``pipeline.align_series``), and the qc
+    notes of registration (large motion, poor metric, another frame of reference)."""
+
+    alignments: dict[Role, Alignment]
+    qc: tuple[QcNote, ...] = ()
+
+
+@dataclass(frozen=True)
+class StudyMeasurement:
+    """The measurement stage's output (``pipeline.measure_study``): every ROI measured on every
+    series, the sampled voxels of each ROI on each series (keyed ``(roi id, role)``, for the key
+    images) and the stage's qc notes (ROIs that overlap a lesion)."""
+
+    study: MeasuredStudy
+    samples: dict[tuple[str, Role], RoiSample]
+    qc: tuple[QcNote, ...] = ()
+
+
+@dataclass(frozen=True)
+class Analysis:
+    """Everything the job concludes, before anything is written (``pipeline.analyze_case``).
+
+    ``findings`` is the findings.json object; ``key_slices`` the key images' slices; ``phrases``
+    the wording characterization chose per lesion id; ``stacks`` the measured stack per role.
+    The intermediate stages' outputs are kept for callers that compare or re-use them.
+    """
+
+    findings: dict[str, Any]
+    key_slices: tuple[KeySlice, ...]
+    phrases: dict[str, LesionPhrases]
+    plan: ReportPlan
+    images: dict[Role, sitk.Image]
+    aligned: AlignedStudy
+    measurement: StudyMeasurement
+
+    @property
+    def stacks(self) -> dict[Role, Stack]:
+        """The stack measured for each role."""
+        return self.plan.measured

@@ -1,18 +1,26 @@
 """The main job, end to end: a study and a case file in, a report folder out.
 
-    study index -> series roles -> volumes -> ROIs -> alignment -> measurements
-                -> characterization -> report files
+The job is a short sequence of stages, each a function of this module (or of a stage's
+subpackage) that takes the plain data (``sigreport.model``) of the stages before it::
 
-Each stage lives in its own subpackage and hands plain data (``sigreport.model``) to the next;
-this module only chooses what to measure, wires the stages together and collects the ``qc``
-notes that decisions along the way produce. Nothing is guessed silently: a doubtful role, a
-large registration, a missing series each leave a note.
+    plan_report    case file + lexicon -> study index, roles, measured series, ROIs, anchor
+    load_series    the measured series' pixels (SimpleITK images, patient space)
+    align_series   each series' rigid alignment to the anchor
+    measure_study  every ROI sampled and measured on every series (+ noise floor)
+    characterize   ratios, grades, pairs, controls, behaviour       (sigreport.measure)
+    build_findings, build_key_slices   findings.json object and key images   (sigreport.report)
+    write_report   the report folder, atomically                     (sigreport.report)
+
+:func:`analyze_case` runs every stage up to the findings and writes nothing (for a batch runner,
+a comparison with a prior study, a server); :func:`run_report` adds the report folder. This
+module also chooses what to measure and collects the ``qc`` notes those choices produce.
+Nothing is guessed silently: a doubtful role, a large registration, a missing series each leave
+a note. The contract is docs/usage.md.
 """
 
 from __future__ import annotations
 
-import datetime as _dt
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
@@ -20,31 +28,69 @@ from typing import Any
 import numpy as np
 import SimpleITK as sitk
 
-from sigreport import __version__, lexicon
+from sigreport.align import identity_alignment, register_rigid
 from sigreport.errors import InputError
+from sigreport.ingest import index_study, load_stack
+from sigreport.lexicon_tables import Lexicon, load_lexicon
+from sigreport.measure import Characterization, characterize, measure_roi, noise_sigma
 from sigreport.model import (
+    ROLE_ORDER,
+    AlignedStudy,
     Alignment,
+    Analysis,
     Case,
-    KeySlice,
     MeasuredRoi,
     MeasuredStudy,
+    Progress,
     QcLevel,
     QcNote,
+    ReportPlan,
     RoiKind,
     Role,
     SeriesMeasurement,
     Stack,
     StudyIndex,
+    StudyMeasurement,
+    say,
 )
+from sigreport.report import (
+    FINDINGS_SCHEMA,
+    build_findings,
+    build_key_slices,
+    lesion_phrases,
+    write_report,
+)
+from sigreport.report.outdir import check_outdir, report_inputs
+from sigreport.rois import (
+    RoiSample,
+    build_region,
+    load_case,
+    max_diameter_mm,
+    sample_region,
+    union_bounds,
+    volume_ml,
+)
+from sigreport.rois.space import Region
 
-Progress = Callable[[str], None]
+__all__ = [
+    "DOUBTFUL_ROLE_CONFIDENCE",
+    "FINDINGS_SCHEMA",
+    "ROLE_ORDER",
+    "Progress",
+    "ReportRun",
+    "align_series",
+    "analyze_case",
+    "apply_role_overrides",
+    "characterize_study",
+    "choose_anchor",
+    "choose_measured",
+    "load_series",
+    "measure_study",
+    "plan_report",
+    "resolve_study_dir",
+    "run_report",
+]
 
-FINDINGS_SCHEMA = "sigreport-findings/1"
-# Roles listed in the order a radiologist reads them (also the order of the report's table).
-ROLE_ORDER = (
-    Role.T1, Role.T1FS, Role.T2, Role.T2FS, Role.PD, Role.FLAIR, Role.STIR, Role.T2STAR,
-    Role.DWI, Role.ADC, Role.T1POST, Role.T1POSTFS,
-)  # fmt: skip
 # Below this confidence an inferred role is reported as doubtful in qc.
 DOUBTFUL_ROLE_CONFIDENCE = 0.6
 
@@ -56,11 +102,6 @@ class ReportRun:
     out_dir: Path
     report_html: Path
     findings: dict[str, Any]
-
-
-def _say(progress: Progress | None, message: str) -> None:
-    if progress is not None:
-        progress(message)
 
 
 # --------------------------------------------------------------------------------------------
@@ -110,7 +151,7 @@ def choose_measured(
         if stack.role is not Role.UNKNOWN:
             by_role.setdefault(stack.role, []).append(stack)
     measured: dict[Role, Stack] = {}
-    for role in ROLE_ORDER:
+    for role in ROLE_ORDER:  # reading order, so the measured series are listed in it
         candidates = by_role.get(role, [])
         if not candidates:
             continue
@@ -164,7 +205,7 @@ def _series_name(stack: Stack) -> str:
 
 
 def choose_anchor(
-    case: Case, measured: Mapping[Role, Stack], regions: Sequence[Any]
+    case: Case, measured: Mapping[Role, Stack], regions: Sequence[Region]
 ) -> tuple[Role, str]:
     """The series ROIs are defined against: the case file's ``anchor``, else the series a mask
     ROI was drawn on, else the finest 3D series, else the finest series. Returns the role and
@@ -195,71 +236,66 @@ def choose_anchor(
 
 
 # --------------------------------------------------------------------------------------------
-# The job
+# The stages
 
 
-def run_report(
-    case_path: Path,
-    out_dir: Path,
-    *,
-    study_dir: Path | None = None,
-    register: bool | None = None,
-    force: bool = False,
-    site_lexicon: Path | None = None,
-    progress: Progress | None = None,
-) -> ReportRun:
-    """Place the case's ROIs on every series of the study, measure, characterize and write the
-    report folder.
+def resolve_study_dir(case: Case, study_dir: Path | None = None) -> Path:
+    """The study folder: ``study_dir`` when given, else the case file's ``study``.
 
-    Parameters
-    ----------
-    case_path
-        The case file (interface.md, The case file).
-    out_dir
-        The report folder; written atomically, refused when it exists unless ``force``.
-    study_dir
-        The study folder; wins over the case file's ``study``.
-    register
-        Rigid alignment of every series to the anchor; ``None`` takes the case file's
-        ``[options] register``, whose default is True.
-    site_lexicon
-        A site's lexicon folder; wins over the case file's ``lexicon``.
+    Raises
+    ------
+    InputError
+        When neither names one.
     """
-    from sigreport.align import identity_alignment, register_rigid
-    from sigreport.ingest import index_study, load_stack
-    from sigreport.measure import characterize, load_rules, measure_roi, noise_sigma
-    from sigreport.report import write_report
-    from sigreport.report.outdir import check_outdir, report_inputs
-    from sigreport.rois import (
-        build_region,
-        load_case,
-        max_diameter_mm,
-        sample_region,
-        union_bounds,
-        volume_ml,
-    )
-
-    case = load_case(Path(case_path))
-    site = site_lexicon if site_lexicon is not None else case.lexicon
-    lexicon.site_dir(site)  # a missing site folder is an input error before any work
-    rules = load_rules(site)
-    study_dir = study_dir if study_dir is not None else case.study
-    if study_dir is None:
+    chosen = study_dir if study_dir is not None else case.study
+    if chosen is None:
         raise InputError(
             f'{case.path.name}: no study folder: give STUDY_DIR or set study = "..." in the case file'
         )
-    out_dir = check_outdir(out_dir, inputs=report_inputs(case, Path(study_dir), site), force=force)
+    return Path(chosen)
 
-    _say(progress, f"indexing {study_dir}")
-    index = index_study(Path(study_dir), site_lexicon=site)
+
+def plan_report(
+    case: Case,
+    lexicon: Lexicon,
+    study_dir: Path,
+    *,
+    register: bool | None = None,
+    progress: Progress | None = None,
+) -> ReportPlan:
+    """Index the study and decide what to measure: roles (the case file's ``[roles]`` first),
+    one series per role, the ROIs in patient space, the anchor series and whether to register.
+
+    Parameters
+    ----------
+    case
+        The case file (:func:`sigreport.rois.load_case`).
+    lexicon
+        The run's lexicon (its role bands infer the roles).
+    study_dir
+        The study folder (:func:`resolve_study_dir`).
+    register
+        Rigid alignment of every series to the anchor; ``None`` takes the case file's
+        ``[options] register``, whose default is True.
+    progress
+        Told about each indexed file.
+
+    Raises
+    ------
+    InputError
+        When the study holds no usable MR series, none with a measurable role, the case file's
+        ``[roles]`` or ``anchor`` name no series, or a mask ROI cannot be read.
+    """
+    say(progress, f"indexing {study_dir}")
+    index = index_study(Path(study_dir), progress=progress, bands=lexicon.role_bands)
     if not index.stacks:
         reasons = "; ".join(f"{s.path.name}: {s.reason}" for s in index.skipped[:5])
         raise InputError(
             f"no usable MR series under {study_dir}" + (f" ({reasons})" if reasons else "")
         )
     index, forced = apply_role_overrides(index, case.roles, case_name=case.path.name)
-    measured, qc = choose_measured(index, forced)
-    qc = [QcNote(QcLevel.WARNING, "study", w) for w in index.warnings] + qc
+    measured, notes = choose_measured(index, forced)
+    qc = [QcNote(QcLevel.WARNING, "study", w) for w in index.warnings] + notes
     if index.skipped:
         qc.append(
             QcNote(
@@ -272,24 +308,62 @@ def run_report(
         raise InputError(
             f"no series under {study_dir} has a role that can be measured (all UNKNOWN)"
         )
-
-    regions = [build_region(spec) for spec in case.rois]
+    regions = tuple(build_region(spec) for spec in case.rois)
     anchor_role, anchor_reason = choose_anchor(case, measured, regions)
-    anchor = measured[anchor_role]
     do_register = (
         register if register is not None else (case.register if case.register is not None else True)
     )
+    anchor_note = QcNote(
+        QcLevel.INFO,
+        "anchor",
+        f"ROIs are placed in the patient space of {anchor_role.value} "
+        f"({_series_name(measured[anchor_role])}): {anchor_reason}"
+        + (
+            "" if do_register else "; registration off, the scanner's frame of reference is trusted"
+        ),
+    )
+    return ReportPlan(
+        case=case,
+        lexicon=lexicon,
+        study_dir=Path(study_dir),
+        index=index,
+        measured=measured,
+        anchor_role=anchor_role,
+        anchor_reason=anchor_reason,
+        register=do_register,
+        regions=regions,
+        qc=tuple(qc),
+        anchor_note=anchor_note,
+    )
 
+
+def load_series(plan: ReportPlan, *, progress: Progress | None = None) -> dict[Role, sitk.Image]:
+    """The pixels of each measured series: float32, rescaled, in DICOM patient space (LPS)
+    (:func:`sigreport.ingest.load_stack`), in the plan's role order."""
     images: dict[Role, sitk.Image] = {}
-    for role, stack in measured.items():
-        _say(progress, f"loading {role.value}: {_series_name(stack)}")
+    total = len(plan.measured)
+    for done, (role, stack) in enumerate(plan.measured.items()):
+        say(progress, f"loading {role.value}: {_series_name(stack)}", done, total)
         images[role] = load_stack(stack)
+    return images
 
+
+def align_series(
+    plan: ReportPlan, images: Mapping[Role, sitk.Image], *, progress: Progress | None = None
+) -> AlignedStudy:
+    """Each measured series' alignment to the anchor: identity for the anchor; a rigid
+    registration on the ROIs' neighbourhood when the plan registers, or when the series is in
+    another frame of reference than the anchor (always, with a note when registration is off);
+    else the scanner's frame of reference. Registration warnings become qc notes."""
+    anchor = plan.anchor
+    settings = plan.lexicon.alignment
     # The ROIs' box; register_rigid adds the lexicon's margin of anatomy around it.
-    box = union_bounds(regions)
+    box = union_bounds(plan.regions)
     alignments: dict[Role, Alignment] = {}
-    for role, stack in measured.items():
-        if role is anchor_role:
+    qc: list[QcNote] = []
+    total = len(plan.measured)
+    for done, (role, stack) in enumerate(plan.measured.items()):
+        if role is plan.anchor_role:
             alignments[role] = identity_alignment("identity")
             continue
         other_frame = (
@@ -297,12 +371,12 @@ def run_report(
             and anchor.frame_of_reference_uid is not None
             and stack.frame_of_reference_uid != anchor.frame_of_reference_uid
         )
-        if do_register or other_frame:
-            _say(progress, f"registering {role.value} to {anchor_role.value}")
+        if plan.register or other_frame:
+            say(progress, f"registering {role.value} to {plan.anchor_role.value}", done, total)
             alignment = register_rigid(
-                images[anchor_role], images[role], box_mm=box, site_lexicon=site
+                images[plan.anchor_role], images[role], box_mm=box, settings=settings
             )
-            if other_frame and not do_register:
+            if other_frame and not plan.register:
                 qc.append(
                     QcNote(
                         QcLevel.INFO,
@@ -317,19 +391,37 @@ def run_report(
             QcNote(QcLevel.WARNING, "registration", f"{role.value}: {w}")
             for w in alignment.warnings
         )
+    return AlignedStudy(alignments=alignments, qc=tuple(qc))
 
+
+def measure_study(
+    plan: ReportPlan,
+    images: Mapping[Role, sitk.Image],
+    aligned: AlignedStudy,
+    *,
+    progress: Progress | None = None,
+) -> StudyMeasurement:
+    """Sample every ROI on every series (through its alignment) and measure it; the noise floor
+    of each series; each ROI's volume and largest diameter on the finest series.
+
+    Returns the measured study (the input of characterization), the samples (for the key
+    images) and the qc notes of ROIs that share voxels with a lesion.
+    """
+    rules = plan.lexicon.rules
     min_voxels = int(rules.min_voxels)
-    samples: dict[tuple[str, Role], Any] = {}
+    measured = plan.measured
+    samples: dict[tuple[str, Role], RoiSample] = {}
     measured_rois: list[MeasuredRoi] = []
     finest_role = min(measured, key=lambda r: measured[r].voxel_volume_mm3)
     noise: dict[Role, float | None] = {}
     for role, image in images.items():
         noise[role] = noise_sigma(sitk.GetArrayViewFromImage(image))
-    for spec, region in zip(case.rois, regions, strict=True):
-        _say(progress, f"measuring {spec.id}")
+    total = len(plan.case.rois)
+    for done, (spec, region) in enumerate(zip(plan.case.rois, plan.regions, strict=True)):
+        say(progress, f"measuring {spec.id}", done, total)
         by_role: dict[Role, SeriesMeasurement] = {}
         for role, image in images.items():
-            transform = alignments[role].transform
+            transform = aligned.alignments[role].transform
             sample = sample_region(
                 region,
                 image,
@@ -359,41 +451,143 @@ def run_report(
                 by_role=by_role,
             )
         )
-    qc.extend(_overlap_notes(case, samples, anchor_role))
+    study = MeasuredStudy(rois=tuple(measured_rois), stacks=dict(measured), noise_sigma=noise)
+    overlaps = _overlap_notes(plan.case, samples, plan.anchor_role)
+    return StudyMeasurement(study=study, samples=samples, qc=tuple(overlaps))
 
-    _say(progress, "characterizing")
-    result = characterize(
-        MeasuredStudy(rois=tuple(measured_rois), stacks=dict(measured), noise_sigma=noise), rules
+
+def characterize_study(
+    plan: ReportPlan, measurement: StudyMeasurement, *, progress: Progress | None = None
+) -> Characterization:
+    """Ratios, grades, enhancement, suppression, flow void, controls and behaviour, with the
+    run's lexicon (:func:`sigreport.measure.characterize`)."""
+    say(progress, "characterizing")
+    return characterize(measurement.study, plan.lexicon.rules)
+
+
+def analyze_case(
+    case: Case | Path,
+    *,
+    study_dir: Path | None = None,
+    register: bool | None = None,
+    site_lexicon: Path | None = None,
+    lexicon: Lexicon | None = None,
+    progress: Progress | None = None,
+) -> Analysis:
+    """Every stage up to the findings: plan, load, align, measure, characterize, then the
+    findings.json object and the key slices. Writes nothing.
+
+    Parameters
+    ----------
+    case
+        The case file, loaded (:func:`sigreport.rois.load_case`) or its path.
+    study_dir
+        The study folder; wins over the case file's ``study``.
+    register
+        As :func:`plan_report`.
+    site_lexicon
+        A site's lexicon folder; wins over the case file's ``lexicon``. Ignored when
+        ``lexicon`` is given.
+    lexicon
+        The lexicon, already loaded (:func:`sigreport.lexicon_tables.load_lexicon`), e.g. once
+        for a batch of cases.
+    progress
+        Told about each step (:class:`sigreport.model.Progress`).
+
+    Returns
+    -------
+    Analysis
+        The findings, key slices and the words chosen per lesion, with every stage's output.
+    """
+    if not isinstance(case, Case):
+        case = load_case(Path(case))
+    if lexicon is None:
+        lexicon = load_lexicon(site_lexicon if site_lexicon is not None else case.lexicon)
+    plan = plan_report(
+        case, lexicon, resolve_study_dir(case, study_dir), register=register, progress=progress
     )
-    qc.extend(result.qc)
-    qc.append(
-        QcNote(
-            QcLevel.INFO,
-            "anchor",
-            f"ROIs are placed in the patient space of {anchor_role.value} ({_series_name(anchor)}): {anchor_reason}"
-            + (
-                ""
-                if do_register
-                else "; registration off, the scanner's frame of reference is trusted"
-            ),
-        )
+    images = load_series(plan, progress=progress)
+    aligned = align_series(plan, images, progress=progress)
+    measurement = measure_study(plan, images, aligned, progress=progress)
+    result = characterize_study(plan, measurement, progress=progress)
+    qc = [*plan.qc, *aligned.qc, *measurement.qc, *result.qc]
+    if plan.anchor_note is not None:
+        qc.append(plan.anchor_note)
+    findings = build_findings(
+        plan.index,
+        plan.measured,
+        aligned.alignments,
+        plan.anchor_role,
+        result,
+        qc,
+        cautions=lexicon.cautions,
+    )
+    key_slices = build_key_slices(case, images, measurement.samples, plan.measured)
+    return Analysis(
+        findings=findings,
+        key_slices=tuple(key_slices),
+        phrases=lesion_phrases(result),
+        plan=plan,
+        images=dict(images),
+        aligned=aligned,
+        measurement=measurement,
     )
 
-    findings = build_findings(index, measured, alignments, anchor_role, result, qc, site=site)
-    key_slices = build_key_slices(case, images, samples, measured)
-    _say(progress, f"writing {out_dir}")
+
+def run_report(
+    case_path: Path,
+    out_dir: Path,
+    *,
+    study_dir: Path | None = None,
+    register: bool | None = None,
+    force: bool = False,
+    site_lexicon: Path | None = None,
+    progress: Progress | None = None,
+) -> ReportRun:
+    """Place the case's ROIs on every series of the study, measure, characterize and write the
+    report folder (:func:`analyze_case`, then :func:`sigreport.report.write_report`).
+
+    Parameters
+    ----------
+    case_path
+        The case file (docs/usage.md, The case file).
+    out_dir
+        The report folder; written atomically, refused when it exists unless ``force``.
+    study_dir
+        The study folder; wins over the case file's ``study``.
+    register
+        Rigid alignment of every series to the anchor; ``None`` takes the case file's
+        ``[options] register``, whose default is True.
+    site_lexicon
+        A site's lexicon folder; wins over the case file's ``lexicon``.
+    progress
+        Told about each step (:class:`sigreport.model.Progress`).
+    """
+    case = load_case(Path(case_path))
+    # Every lexicon table is validated here, before any work (a missing site folder too).
+    lexicon = load_lexicon(site_lexicon if site_lexicon is not None else case.lexicon)
+    study = resolve_study_dir(case, study_dir)
+    out_dir = check_outdir(out_dir, inputs=report_inputs(case, study, lexicon.site), force=force)
+    analysis = analyze_case(
+        case, study_dir=study, register=register, lexicon=lexicon, progress=progress
+    )
+    say(progress, f"writing {out_dir}")
     html = write_report(
         out_dir,
-        findings,
-        key_slices,
-        {r.value: s for r, s in measured.items()},
-        site_lexicon=site,
+        analysis.findings,
+        analysis.key_slices,
+        {r.value: s for r, s in analysis.stacks.items()},
         force=force,
+        lexicon=lexicon,
+        phrases=analysis.phrases,
+        progress=progress,
     )
-    return ReportRun(out_dir=out_dir, report_html=html, findings=findings)
+    return ReportRun(out_dir=out_dir, report_html=html, findings=analysis.findings)
 
 
-def _overlap_notes(case: Case, samples: Mapping[tuple[str, Role], Any], role: Role) -> list[QcNote]:
+def _overlap_notes(
+    case: Case, samples: Mapping[tuple[str, Role], RoiSample], role: Role
+) -> list[QcNote]:
     """A reference or control ROI that shares voxels with a lesion ROI (on the anchor grid)."""
     notes = []
     lesions = [s for s in case.rois if s.kind is RoiKind.LESION]
@@ -415,123 +609,3 @@ def _overlap_notes(case: Case, samples: Mapping[tuple[str, Role], Any], role: Ro
                     )
                 )
     return notes
-
-
-# --------------------------------------------------------------------------------------------
-# Report inputs
-
-
-def build_findings(
-    index: StudyIndex,
-    measured: Mapping[Role, Stack],
-    alignments: Mapping[Role, Alignment],
-    anchor_role: Role,
-    result: Any,
-    qc: Sequence[QcNote],
-    *,
-    site: Path | None = None,
-) -> dict[str, Any]:
-    """The findings.json object (interface.md, schema sigreport-findings/1)."""
-    measured_keys = {s.key: r for r, s in measured.items()}
-    series = []
-    for stack in sorted(index.stacks, key=lambda s: (s.series_number or 0, s.stack or "")):
-        role = measured_keys.get(stack.key)
-        entry: dict[str, Any] = {
-            "role": stack.role.value,
-            "series_instance_uid": stack.series_instance_uid,
-            "series_number": stack.series_number,
-            "stack": stack.stack,
-            "description": stack.description,
-            "role_reason": stack.role_reason,
-            "confidence": round(float(stack.confidence), 3),
-            "measured": role is not None,
-        }
-        if role is not None:
-            entry["alignment"] = alignments[role].to_json()
-            entry["anchor"] = role is anchor_role
-        series.append(entry)
-    cautions = lexicon.read_table("cautions.toml", site).get("cautions")
-    if (
-        not isinstance(cautions, list)
-        or not cautions
-        or not all(isinstance(c, str) for c in cautions)
-    ):
-        raise InputError("lexicon cautions.toml: 'cautions' must be a non-empty list of strings")
-    study = index.study
-    return {
-        "schema": FINDINGS_SCHEMA,
-        "tool": {"name": "sigreport", "version": __version__},
-        "generated": _dt.datetime.now(_dt.UTC).replace(microsecond=0).isoformat(),
-        "study": {
-            "study_instance_uid": study.study_instance_uid,
-            "study_date": study.study_date,
-            "accession_number": study.accession_number,
-        },
-        "series": series,
-        "rois": [dict(r) for r in result.rois],
-        "lesions": [lesion.to_json() for lesion in result.lesions],
-        "qc": [note.to_json() for note in _dedupe(qc)],
-        "cautions": list(cautions),
-    }
-
-
-def _dedupe(notes: Sequence[QcNote]) -> list[QcNote]:
-    seen: set[QcNote] = set()
-    out = []
-    for note in notes:
-        if note not in seen:
-            seen.add(note)
-            out.append(note)
-    # Warnings first, so that they are the first thing a reader sees.
-    order = {QcLevel.ERROR: 0, QcLevel.WARNING: 1, QcLevel.INFO: 2}
-    return sorted(out, key=lambda n: order[n.level])
-
-
-def build_key_slices(
-    case: Case,
-    images: Mapping[Role, sitk.Image],
-    samples: Mapping[tuple[str, Role], Any],
-    measured: Mapping[Role, Stack],
-) -> list[KeySlice]:
-    """The slice through each lesion's centre on every measured series, with the outlines of
-    the lesion ROI and of its reference ROI on that slice."""
-    slices = []
-    for spec in case.rois:
-        if spec.kind is not RoiKind.LESION:
-            continue
-        for role in ROLE_ORDER:
-            if role not in images:
-                continue
-            sample = samples[(spec.id, role)]
-            if sample.n_voxels == 0:
-                continue
-            weights = np.where(sample.mask, sample.weights, 0.0)
-            per_slice = weights.sum(axis=(1, 2))
-            # The weighted centre along the stack, snapped to a slice that holds ROI voxels.
-            centre = float(np.dot(np.arange(per_slice.size), per_slice) / per_slice.sum())
-            holding = np.flatnonzero(per_slice > 0)
-            z = int(holding[np.argmin(np.abs(holding - centre))])
-            array = sitk.GetArrayViewFromImage(images[role])
-            reference = samples.get((spec.reference, role)) if spec.reference else None
-            ref_mask = (
-                reference.mask[z].copy()
-                if reference is not None and reference.mask[z].any()
-                else None
-            )
-            spacing = images[role].GetSpacing()
-            stack = measured[role]
-            slices.append(
-                KeySlice(
-                    roi_id=spec.id,
-                    role=role,
-                    image=np.array(array[z], dtype=np.float32),
-                    lesion_mask=sample.mask[z].copy(),
-                    reference_mask=ref_mask,
-                    pixel_spacing_mm=(float(spacing[1]), float(spacing[0])),
-                    slice_index=z,
-                    sop_instance_uid=stack.instances[z].sop_instance_uid
-                    if z < len(stack.instances)
-                    else None,
-                )
-            )
-    return slices

@@ -230,6 +230,7 @@ def register_rigid(
     *,
     box_mm: tuple[np.ndarray, np.ndarray] | None = None,
     site_lexicon: Path | None = None,
+    settings: AlignmentSettings | None = None,
 ) -> Alignment:
     """Align ``moving`` (a series) to ``fixed`` (the anchor) by a rigid transform.
 
@@ -244,7 +245,10 @@ def register_rigid(
         ``bounds_mm()``; ``margin_mm`` of ``alignment.toml`` is added on every side. None: the
         whole anchor.
     site_lexicon : pathlib.Path, optional
-        A site lexicon folder whose ``alignment.toml`` replaces the bundled one.
+        A site lexicon folder whose ``alignment.toml`` replaces the bundled one; read only when
+        ``settings`` is not given.
+    settings : AlignmentSettings, optional
+        The run's registration settings (``Lexicon.alignment``), loaded once for every series.
 
     Returns
     -------
@@ -266,7 +270,8 @@ def register_rigid(
     for name, image in (("fixed", fixed), ("moving", moving)):
         if not isinstance(image, sitk.Image) or image.GetDimension() != 3:
             raise ValueError(f'Argument "{name}" must be a 3D SimpleITK image.')
-    settings = load_settings(site_lexicon)
+    if settings is None:
+        settings = load_settings(site_lexicon)
     fixed_f = sitk.Cast(fixed, sitk.sitkFloat32)
     moving_f = sitk.Cast(moving, sitk.sitkFloat32)
 

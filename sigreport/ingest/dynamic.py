@@ -19,11 +19,11 @@ from __future__ import annotations
 
 from dataclasses import replace
 
-from sigreport.model import Role, Stack
+from sigreport.model import FAT_SUPPRESSED_T1, PRE_CONTRAST_OF, Stack
 
-POST = (Role.T1POST, Role.T1POSTFS)
-PRE_OF = {Role.T1POST: Role.T1, Role.T1POSTFS: Role.T1FS}
-T1_FAMILY = (Role.T1, Role.T1FS, *POST)
+POST = tuple(PRE_CONTRAST_OF)
+PRE_OF = PRE_CONTRAST_OF
+T1_FAMILY = (*PRE_CONTRAST_OF.values(), *POST)
 
 
 def _signature(stack: Stack) -> tuple[object, ...]:
@@ -41,7 +41,7 @@ def _signature(stack: Stack) -> tuple[object, ...]:
         r(acq.repetition_time_ms),
         r(acq.echo_time_ms),
         r(acq.flip_angle_deg, 1),
-        stack.role in (Role.T1FS, Role.T1POSTFS),
+        stack.role in FAT_SUPPRESSED_T1,
     )
 
 

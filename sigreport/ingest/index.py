@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import os
 from collections import Counter
-from collections.abc import Callable
 from dataclasses import replace
 from pathlib import Path
 
@@ -12,9 +11,14 @@ from sigreport.errors import InputError
 from sigreport.ingest.attributes import FrameRecord, SkipFile
 from sigreport.ingest.dynamic import assign_dynamic_phases
 from sigreport.ingest.header import read_frames
-from sigreport.ingest.roles import _infer, load_role_bands, refine_roles_across_stacks
+from sigreport.ingest.roles import (
+    RoleBands,
+    _infer,
+    load_role_bands,
+    refine_roles_across_stacks,
+)
 from sigreport.ingest.stacks import build_stacks
-from sigreport.model import SkippedFile, StudyIndex, StudyInfo
+from sigreport.model import Progress, SkippedFile, StudyIndex, StudyInfo
 
 
 def _files(study_dir: Path) -> list[Path]:
@@ -28,8 +32,9 @@ def _files(study_dir: Path) -> list[Path]:
 def index_study(
     study_dir: Path,
     *,
-    progress: Callable[[int, int], None] | None = None,
+    progress: Progress | None = None,
     site_lexicon: Path | None = None,
+    bands: RoleBands | None = None,
 ) -> StudyIndex:
     """Index every DICOM file under ``study_dir`` (recursively, any file names).
 
@@ -43,9 +48,12 @@ def index_study(
     study_dir
         The study folder.
     progress
-        Called as ``progress(done, total)`` after each file.
+        Called as ``progress("indexing files", done, total)`` after each file.
     site_lexicon
-        A site lexicon folder (its ``roles.toml`` replaces the bundled one).
+        A site lexicon folder (its ``roles.toml`` replaces the bundled one); read only when
+        ``bands`` is not given.
+    bands
+        The role bands of the run's lexicon (``Lexicon.role_bands``).
 
     Raises
     ------
@@ -57,7 +65,8 @@ def index_study(
         raise InputError(f"study folder {study_dir} does not exist")
     if not study_dir.is_dir():
         raise InputError(f"study folder {study_dir} is not a folder")
-    bands = load_role_bands(site_lexicon)
+    if bands is None:
+        bands = load_role_bands(site_lexicon)
     files = _files(study_dir)
     records: list[FrameRecord] = []
     skipped: list[SkippedFile] = []
@@ -70,7 +79,7 @@ def index_study(
         except RecursionError:
             skipped.append(SkippedFile(path=path, reason="not readable: nesting too deep"))
         if progress is not None:
-            progress(done, total)
+            progress("indexing files", done, total)
 
     stacks = []
     for stack in build_stacks(records):

@@ -1,4 +1,4 @@
-"""Series role inference from acquisition physics (interface.md, Series roles).
+"""Series role inference from acquisition physics (docs/usage.md, Series roles).
 
 The header decides: repetition, echo and inversion time, flip angle, scanning sequence and
 variant, scan options (fat suppression), contrast agent, b-value and image type. The series

@@ -15,7 +15,7 @@ SCAN_SCHEMA = "sigreport-scan/1"
 
 
 def scan_to_json(index: StudyIndex) -> dict[str, Any]:
-    """The ``scan --json`` object of interface.md: one series entry per stack."""
+    """The ``scan --json`` object of docs/usage.md: one series entry per stack."""
     series = [
         {
             "series_instance_uid": s.series_instance_uid,

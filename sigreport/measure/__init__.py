@@ -3,7 +3,7 @@
     measurements (roi_stats, measure_roi, noise_sigma) -> characterization (characterize)
 
 The lexicon this stage reads (thresholds.toml, tissues.toml, behaviour.toml) is loaded and
-validated by :func:`load_rules`. Definitions follow interface.md (findings.json); the reasoning
+validated by :func:`load_rules`. Definitions follow docs/usage.md (findings.json); the reasoning
 behind each number is in docs/measurements.md.
 """
 

@@ -1,5 +1,5 @@
 """From measurements to a characterization: ratios, grades, enhancement, suppression, flow void,
-controls and signal-behaviour rules (interface.md, findings.json definitions).
+controls and signal-behaviour rules (docs/usage.md, findings.json; the reasoning behind each number is in docs/measurements.md).
 
 Every number here is a ratio of medians on one series, so the arbitrary scaling each series
 carries cancels: multiplying a series by a positive factor changes no ratio, grade, percentage
@@ -23,9 +23,13 @@ from sigreport.measure.rules import (
     rounded_ratio,
 )
 from sigreport.model import (
+    ENHANCEMENT_PAIRS,
+    SUPPRESSION_PAIRS,
     Acquisition,
+    BehaviourPhrase,
     EnhancementPattern,
     Grade,
+    LesionPhrases,
     MeasuredRoi,
     MeasuredStudy,
     QcLevel,
@@ -34,23 +38,8 @@ from sigreport.model import (
     RoiStats,
     Role,
     SeriesMeasurement,
+    first_pair,
 )
-
-#: Pre -> post pairs for enhancement, the first the study has is used (interface.md).
-ENHANCEMENT_PAIRS: tuple[tuple[Role, Role], ...] = (
-    (Role.T1, Role.T1POST),
-    (Role.T1FS, Role.T1POSTFS),
-)
-#: Unsuppressed -> suppressed pairs; the first the study has is used (interface.md).
-SUPPRESSION_PAIRS: dict[str, tuple[tuple[Role, Role], ...]] = {
-    "fluid": ((Role.T2, Role.FLAIR),),
-    "fat": (
-        (Role.T1, Role.T1FS),
-        (Role.T1POST, Role.T1POSTFS),
-        (Role.T2, Role.T2FS),
-        (Role.T2, Role.STIR),
-    ),
-}
 
 
 def _r(value: float | None, digits: int) -> float | None:
@@ -131,7 +120,9 @@ class SuppressionResult:
 
 @dataclass(frozen=True)
 class LesionResult:
-    """One lesion characterized; ``to_json`` is exactly the interface.md lesion object."""
+    """One lesion characterized; ``to_json`` is exactly the findings.json lesion object
+    (docs/findings.schema.json). ``behaviour_phrases`` are the matched rules in the lexicon's
+    words, in the order of ``behaviour``."""
 
     id: str
     site: str | None
@@ -143,6 +134,18 @@ class LesionResult:
     suppression: dict[str, SuppressionResult]
     flow_void: bool
     behaviour: tuple[str, ...] = ()
+    behaviour_phrases: tuple[BehaviourPhrase, ...] = ()
+
+    def phrases(self) -> LesionPhrases:
+        """The words the report renders: the graded wording per series and the behaviour."""
+        return LesionPhrases(
+            grades={
+                role.value: s.phrase
+                for role, s in self.signal.items()
+                if s is not None and s.phrase is not None
+            },
+            behaviour=self.behaviour_phrases,
+        )
 
     def to_json(self) -> dict[str, Any]:
         return {
@@ -196,13 +199,6 @@ def _drop(before: float | None, after: float | None) -> float | None:
     """100 * (1 - after / before): the suppression drop."""
     q = _ratio(after, before)
     return None if q is None else 100.0 * (1.0 - q)
-
-
-def _first_pair(pairs: tuple[tuple[Role, Role], ...], roles: set[Role]) -> tuple[Role, Role] | None:
-    for a, b in pairs:
-        if a in roles and b in roles:
-            return a, b
-    return None
 
 
 _SETTINGS = ("repetition_time_ms", "echo_time_ms", "inversion_time_ms", "flip_angle_deg")
@@ -319,9 +315,9 @@ def characterize(measured: MeasuredStudy, rules: Rules) -> Characterization:
         rules=rules,
         roles=roles,
         pairs={
-            "enhancement": _first_pair(ENHANCEMENT_PAIRS, role_set),
-            "fluid": _first_pair(SUPPRESSION_PAIRS["fluid"], role_set),
-            "fat": _first_pair(SUPPRESSION_PAIRS["fat"], role_set),
+            "enhancement": first_pair(ENHANCEMENT_PAIRS, role_set),
+            "fluid": first_pair(SUPPRESSION_PAIRS["fluid"], role_set),
+            "fat": first_pair(SUPPRESSION_PAIRS["fat"], role_set),
         },
     )
     by_id = {roi.spec.id: roi for roi in measured.rois}
@@ -569,7 +565,7 @@ def _lesion(ctx: _Context, lesion: MeasuredRoi, ref: MeasuredRoi | None) -> Lesi
     facts["enhancing"] = enhancement.enhancing
     facts["pattern"] = enhancement.pattern
     facts["flow_void"] = flow_void
-    behaviour = tuple(key for key, rule in rules.behaviour.items() if rule.matches(facts))
+    matched = [rule for rule in rules.behaviour.values() if rule.matches(facts)]
 
     return LesionResult(
         id=lesion.spec.id,
@@ -581,7 +577,10 @@ def _lesion(ctx: _Context, lesion: MeasuredRoi, ref: MeasuredRoi | None) -> Lesi
         enhancement=enhancement,
         suppression=suppression,
         flow_void=flow_void,
-        behaviour=behaviour,
+        behaviour=tuple(rule.key for rule in matched),
+        behaviour_phrases=tuple(
+            BehaviourPhrase(rule.key, rule.phrase, rule.considerations) for rule in matched
+        ),
     )
 
 
@@ -733,7 +732,7 @@ def _suppression(
 def _flow_void(
     ctx: _Context, lesion: MeasuredRoi, signal: Mapping[Role, SignalResult | None]
 ) -> bool:
-    """Dark on every measured series and near the noise floor (interface.md ``flow_void``).
+    """Dark on every measured series and near the noise floor (docs/usage.md, findings.json ``flow_void``).
 
     Series where the lesion has no ratio do not count; at least ``[flow_void] min_series``
     must. The noise criterion (median <= noise_factor x sigma sqrt(pi/2), the Rayleigh mean of

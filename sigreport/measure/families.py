@@ -17,12 +17,10 @@ from typing import Any
 
 from sigreport import lexicon
 from sigreport.errors import InputError
-from sigreport.model import Acquisition, Grade, Role
+from sigreport.model import SUSCEPTIBILITY_TARGETS, Acquisition, Grade, Role
 
 FAMILIES_FILE = "families.toml"
 
-#: The susceptibility-weighted series a T2 pair may end on, preferred first (SWI over T2*).
-SUSCEPTIBILITY_TARGETS = (Role.SWI, Role.T2STAR)
 
 _PERCENT_DECIMALS = 2  # as findings.json prints percentages (measure.rules)
 _RATIO_DECIMALS = 4

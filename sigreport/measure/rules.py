@@ -445,7 +445,7 @@ def rounded_percent(percent: float) -> float:
 
 
 def grade_of(ratio: float | None, rules: Rules) -> Grade | None:
-    """The grade of a ratio (interface.md findings.json ``grade``); None when ratio is None."""
+    """The grade of a ratio (docs/usage.md findings.json ``grade``); None when ratio is None."""
     if ratio is None or not math.isfinite(ratio):
         return None
     r = rounded_ratio(ratio)

@@ -28,10 +28,14 @@ def render_html(
     images: Mapping[str, Sequence[Mapping[str, Any]]],
     wording: Wording,
     site: Path | str | None = None,
+    *,
+    iso_band: tuple[float, float],
 ) -> str:
     """The page. ``images`` maps a lesion id to its key images in display order, each a dict
-    with ``png`` (bytes), ``role`` and ``file`` (the PNG's name under images/). Strings of
-    ``findings`` are cleaned as in :func:`~sigreport.report.text.report_context`."""
+    with ``png`` (bytes), ``role`` and ``file`` (the PNG's name under images/); ``iso_band`` is
+    the isointense band of the grade thresholds (:attr:`sigreport.lexicon_tables.Lexicon.iso_band`)
+    shaded on each ratio plot. Strings of ``findings`` are cleaned as in
+    :func:`~sigreport.report.text.report_context`."""
     findings = clean_strings(findings)
     series = series_by_role(findings)
     by_id = {str(lesion.get("id")): lesion for lesion in findings.get("lesions", [])}
@@ -57,7 +61,7 @@ def render_html(
         plot = Markup(
             ratio_plot_svg(
                 lesion_points(signal, ordered_roles(signal)),
-                iso_band=wording.iso_band,
+                iso_band=iso_band,
                 title=f"{lesion['id']}: ratio to {lesion['reference_tissue']}",
             )
         )

@@ -155,13 +155,16 @@ def png_bytes(rgb: np.ndarray) -> bytes:
 def ratio_plot_svg(
     points: Sequence[tuple[str, float | None]],
     *,
-    iso_band: tuple[float, float] = (0.9, 1.1),
+    iso_band: tuple[float, float],
     title: str = "",
     width: int = 460,
     height: int = 230,
 ) -> str:
     """An inline SVG (no script, no external reference) of a lesion's ratio to its reference
     tissue by series: the iso band shaded, ratio 1 dashed, one dot per measured series.
+
+    ``iso_band`` is (low, high) of the isointense grade, the grade thresholds themselves
+    (:attr:`sigreport.lexicon_tables.Lexicon.iso_band`).
 
     ``points`` are (label, ratio) in display order; a ``None`` ratio leaves its slot empty with
     a "n/m" mark. Every label is XML-escaped.

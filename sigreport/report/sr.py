@@ -292,7 +292,7 @@ def _lesion_group(
                     name=codes.SCT.Ratio,
                     value=float(stats["ratio"]),
                     unit=UNIT_RATIO,
-                    derivation=codes.cid7464.Median,  # ratio of the medians (interface.md)
+                    derivation=codes.cid7464.Median,  # ratio of the medians (docs/usage.md)
                     method=method,
                     referenced_images=images,
                 )

@@ -21,8 +21,9 @@ from jinja2.sandbox import ImmutableSandboxedEnvironment, SecurityError
 
 from sigreport import lexicon
 from sigreport.errors import InputError
+from sigreport.model import LesionPhrases, role_sort_key
 from sigreport.report.tables import ordered_roles, series_by_role, table_rows
-from sigreport.report.wording import Phrases, Wording, fill, role_sort_key
+from sigreport.report.wording import Wording, fill
 from sigreport.safetext import clean_strings
 
 TEXT_WIDTH = 100
@@ -143,10 +144,13 @@ def lesion_sentences(
     lesion: Mapping[str, Any],
     findings: Mapping[str, Any],
     wording: Wording,
-    phrases: Phrases,
+    phrases: LesionPhrases,
 ) -> list[str]:
     """The draft findings sentences for one lesion, in reading order: size, signal on each
-    series relative to the reference tissue, suppression, enhancement, flow void."""
+    series relative to the reference tissue, suppression, enhancement, flow void.
+
+    The graded wording of each series ("markedly hyperintense") is the one characterization
+    chose (``phrases.grades``); a series without one reads as its plain ``grade``."""
     s = wording.sentences
     out: list[str] = []
     volume, diameter = lesion.get("volume_ml"), lesion.get("max_diameter_mm")
@@ -171,7 +175,8 @@ def lesion_sentences(
         if stats is None or stats.get("ratio") is None:
             unmeasured.append(name)
             continue
-        groups.setdefault(phrases.grade(stats.get("ratio"), stats.get("grade")), []).append(name)
+        graded = phrases.grades.get(role) or stats.get("grade") or "unmeasured"
+        groups.setdefault(str(graded), []).append(name)
     items: list[str] = []
     for grade, names in groups.items():
         key = "signal_first" if not items else "signal_next"
@@ -240,11 +245,18 @@ def lesion_sentences(
     return [_capital(sentence) for sentence in out]
 
 
-def behaviour_sentences(lesion: Mapping[str, Any], wording: Wording, phrases: Phrases) -> list[str]:
-    """One "<phrase>: consider <a, b and c>." line per behaviour key of the lesion."""
+def behaviour_sentences(
+    lesion: Mapping[str, Any], wording: Wording, phrases: LesionPhrases
+) -> list[str]:
+    """One "<phrase>: consider <a, b and c>." line per behaviour key of the lesion, in the words
+    characterization chose (``phrases.behaviour``); a key without them reads as the key itself
+    with hyphens as spaces and no considerations."""
+    chosen = {p.key: p for p in phrases.behaviour}
     out = []
     for key in lesion.get("behaviour") or []:
-        phrase, considerations = phrases.behaviour(str(key))
+        found = chosen.get(str(key))
+        phrase = found.phrase if found is not None else str(key).replace("-", " ")
+        considerations = found.considerations if found is not None else ()
         if considerations:
             joined = wording.sentences["considerations_separator"].join(considerations)
             line = fill(
@@ -322,20 +334,22 @@ def text_table(
 
 
 def report_context(
-    findings: Mapping[str, Any], wording: Wording, phrases: Phrases
+    findings: Mapping[str, Any], wording: Wording, phrases: Mapping[str, LesionPhrases]
 ) -> dict[str, Any]:
     """Everything the templates use, as plain strings, lists and dicts.
 
-    Every string of ``findings`` (header values, case-file text, qc messages) is first made
-    one line without control characters (:func:`sigreport.safetext.one_line`): a CR/LF in an
-    AccessionNumber cannot add a line to report.txt, nor a NUL reach report.html.
+    ``phrases`` maps a lesion id to the words characterization chose for it. Every string of
+    ``findings`` (header values, case-file text, qc messages) is first made one line without
+    control characters (:func:`sigreport.safetext.one_line`): a CR/LF in an AccessionNumber
+    cannot add a line to report.txt, nor a NUL reach report.html.
     """
     findings = clean_strings(findings)
     rows = display_rows(findings)
     lesions = []
     for lesion in findings.get("lesions", []):
-        sentences = lesion_sentences(lesion, findings, wording, phrases)
         lesion_id = str(lesion.get("id"))
+        own = phrases.get(lesion_id, LesionPhrases())
+        sentences = lesion_sentences(lesion, findings, wording, own)
         lesions.append(
             {
                 "id": lesion_id,
@@ -348,7 +362,7 @@ def report_context(
                 ),
                 "sentences": sentences,
                 "paragraph": " ".join(sentences),
-                "behaviours": behaviour_sentences(lesion, wording, phrases),
+                "behaviours": behaviour_sentences(lesion, wording, own),
                 "reference_tissue": reference_tissue(lesion, findings),
                 "rows": [r for r in rows if r["lesion"] == lesion_id],
             }

@@ -1,4 +1,4 @@
-"""The report folder (interface.md, OUTDIR), written atomically.
+"""The report folder (docs/outputs.md, OUTDIR), written atomically.
 
 Everything is built in a hidden sibling folder and renamed onto ``out_dir`` once complete; on
 any failure (SIGINT, SIGTERM and SIGHUP included) the temporary folder is removed and the error
@@ -20,7 +20,9 @@ from pathlib import Path
 from typing import Any
 
 from sigreport.errors import InputError
-from sigreport.model import KeySlice, Stack
+from sigreport.lexicon_tables import Lexicon, load_lexicon
+from sigreport.model import KeySlice, LesionPhrases, Progress, Stack, role_sort_key, say
+from sigreport.report.findings import phrases_from_findings
 from sigreport.report.html import render_html
 from sigreport.report.images import png_bytes, render_key_image, safe_name
 from sigreport.report.outdir import (
@@ -34,7 +36,6 @@ from sigreport.report.outdir import (
 from sigreport.report.sr import build_sr, write_sr
 from sigreport.report.tables import rows_to_csv, table_rows
 from sigreport.report.text import render_text, report_context
-from sigreport.report.wording import Phrases, load_wording, role_sort_key
 
 IMAGES_DIR = "images"
 
@@ -99,8 +100,11 @@ def write_report(
     *,
     site_lexicon: Path | None = None,
     force: bool = False,
+    lexicon: Lexicon | None = None,
+    phrases: Mapping[str, LesionPhrases] | None = None,
+    progress: Progress | None = None,
 ) -> Path:
-    """Write every OUTDIR file of interface.md, atomically.
+    """Write every OUTDIR file (docs/outputs.md), atomically.
 
     Files: findings.json, table.csv, report.md, report.txt, report.html, sr.dcm, images/*.png.
 
@@ -115,10 +119,19 @@ def write_report(
     stacks:
         Role string -> the stack measured for that role.
     site_lexicon:
-        A site lexicon folder (wording, templates, characterization rules).
+        A site lexicon folder (wording, templates, characterization rules); read only when
+        ``lexicon`` is not given.
     force:
         Replace an existing ``out_dir`` (only once the new report is complete, and only a
         folder the tool marked as its own).
+    lexicon:
+        The run's lexicon (:func:`sigreport.lexicon_tables.load_lexicon`).
+    phrases:
+        Lesion id -> the words characterization chose (:func:`report.findings.lesion_phrases`);
+        None for a findings object without its characterization (a findings.json read back):
+        the words then come from the lexicon (:func:`report.findings.phrases_from_findings`).
+    progress:
+        Told about each file as it is written.
 
     Returns
     -------
@@ -134,6 +147,10 @@ def write_report(
     """
     out_dir = Path(out_dir)
     check_outdir(out_dir, force=force)
+    if lexicon is None:
+        lexicon = load_lexicon(site_lexicon)
+    if phrases is None:
+        phrases = phrases_from_findings(findings, lexicon.rules)
     try:
         out_dir.parent.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
@@ -146,7 +163,7 @@ def write_report(
             raise _cannot_write(out_dir, exc) from None
         try:
             try:
-                _build(temp, findings, key_slices, stacks, site_lexicon)
+                _build(temp, findings, key_slices, stacks, lexicon, phrases, progress)
                 write_mark(temp, kind="report")
             except OSError as exc:
                 raise _cannot_write(out_dir, exc) from None
@@ -169,25 +186,35 @@ def _build(
     findings: Mapping[str, Any],
     key_slices: Sequence[KeySlice],
     stacks: Mapping[str, Stack],
-    site: Path | None,
+    lexicon: Lexicon,
+    phrases: Mapping[str, LesionPhrases],
+    progress: Progress | None,
 ) -> None:
-    wording = load_wording(site)
-    phrases = Phrases(site)
+    total = 6
+    say(progress, "writing findings.json", 0, total)
     (folder / "findings.json").write_text(findings_json(findings), encoding="utf-8")
+    say(progress, "writing table.csv", 1, total)
     (folder / "table.csv").write_text(
         rows_to_csv(table_rows(findings)), encoding="utf-8", newline=""
     )
-    context = report_context(findings, wording, phrases)
-    markdown, plain = render_text(context, site)
+    say(progress, "writing report.md and report.txt", 2, total)
+    context = report_context(findings, lexicon.wording, phrases)
+    markdown, plain = render_text(context, lexicon.site)
     (folder / "report.md").write_text(markdown, encoding="utf-8")
     (folder / "report.txt").write_text(plain, encoding="utf-8")
+    say(progress, "writing the key images", 3, total)
     files, per_lesion = key_image_files(key_slices)
     (folder / IMAGES_DIR).mkdir()
     for name, png in files.items():
         (folder / IMAGES_DIR / name).write_bytes(png)
-    html = render_html(context, findings, per_lesion, wording, site)
+    say(progress, "writing report.html", 4, total)
+    html = render_html(
+        context, findings, per_lesion, lexicon.wording, lexicon.site, iso_band=lexicon.iso_band
+    )
     (folder / "report.html").write_text(html, encoding="utf-8")
+    say(progress, "writing sr.dcm", 5, total)
     write_sr(folder / "sr.dcm", build_sr(findings, key_slices, stacks))
+    say(progress, "report written", total, total)
 
 
 def _install(temp: Path, out_dir: Path, *, force: bool) -> None:

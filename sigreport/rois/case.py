@@ -1,4 +1,4 @@
-"""The case file: which ROIs to place, where, and how the study is to be read (interface.md).
+"""The case file: which ROIs to place, where, and how the study is to be read (docs/usage.md).
 
 ``load_case`` parses the TOML with :mod:`tomllib`, checks every field, and returns the frozen
 :class:`~sigreport.model.Case`. Every problem found is reported at once, one per line, in one
@@ -367,7 +367,7 @@ def load_case(path: Path) -> Case:
     Parameters
     ----------
     path : pathlib.Path
-        The case file (TOML, interface.md "The case file").
+        The case file (TOML, docs/usage.md "The case file").
 
     Returns
     -------

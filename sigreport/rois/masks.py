@@ -1,6 +1,6 @@
 """ROIs drawn as masks: label images (NIfTI, NRRD, MHA), DICOM SEG and DICOM RTSTRUCT.
 
-Every mask becomes a physical-space region (see :mod:`sigreport.rois.regions`):
+Every mask becomes a physical-space region (:class:`sigreport.rois.space.Region`):
 
 * a **voxel grid** (:class:`GridRegion`) for label images and SEG: a point is inside when the
   mask voxel nearest to it (the one whose cell holds it, as SimpleITK's nearest-neighbour
@@ -23,7 +23,7 @@ import numpy as np
 import SimpleITK as sitk
 
 from sigreport.errors import InputError
-from sigreport.rois.regions import as_points
+from sigreport.rois.space import as_points
 
 __all__ = [
     "GridRegion",

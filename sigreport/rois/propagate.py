@@ -1,6 +1,6 @@
 """Carry a physical-space ROI onto the voxel grid of any series.
 
-Membership follows interface.md: a voxel belongs to an ROI when its centre lies inside it.
+Membership follows docs/usage.md: a voxel belongs to an ROI when its centre lies inside it.
 Partial-volume weights come from supersampling each voxel on a regular sub-grid and counting
 the fraction of sub-samples inside (or averaging the region's own ``fraction`` when it has one,
 e.g. a fractional DICOM SEG); they refine statistics, never membership.
@@ -18,7 +18,7 @@ from dataclasses import dataclass
 import numpy as np
 import SimpleITK as sitk
 
-from sigreport.rois.regions import Region
+from sigreport.rois.space import Region
 
 __all__ = [
     "RoiSample",

@@ -6,18 +6,20 @@ same region is sampled onto every series by :func:`sigreport.rois.propagate.samp
 
 The analytic shapes are axis-aligned in patient space (PS3.3 C.7.6.2.1.1: x towards the
 patient's left, y towards posterior, z towards head). Label images, DICOM SEG and RTSTRUCT
-regions live in :mod:`sigreport.rois.masks`.
+regions live in :mod:`sigreport.rois.masks`; what both kinds share (the :class:`Region`
+protocol, the point check) is in :mod:`sigreport.rois.space`, which imports neither.
 """
 
 from __future__ import annotations
 
 from collections.abc import Iterable
 from dataclasses import dataclass
-from typing import Protocol, runtime_checkable
 
 import numpy as np
 
 from sigreport.model import RoiShape, RoiSpec
+from sigreport.rois.masks import load_mask_region
+from sigreport.rois.space import Region, as_points
 
 __all__ = [
     "Region",
@@ -28,42 +30,6 @@ __all__ = [
     "as_points",
     "union_bounds",
 ]
-
-
-@runtime_checkable
-class Region(Protocol):
-    """A physical-space ROI.
-
-    ``source_series_uid`` is the series a SEG / RTSTRUCT mask was drawn on (None for analytic
-    shapes and plain label images); ``frame_of_reference_uid`` likewise.
-    """
-
-    @property
-    def id(self) -> str: ...
-
-    @property
-    def source_series_uid(self) -> str | None: ...
-
-    @property
-    def frame_of_reference_uid(self) -> str | None: ...
-
-    def contains(self, points_lps: np.ndarray) -> np.ndarray:
-        """``(N, 3)`` LPS points in mm -> ``(N,)`` bool, True where a point is inside."""
-        ...
-
-    def bounds_mm(self) -> tuple[np.ndarray, np.ndarray]:
-        """``(lo, hi)``: an LPS axis-aligned box (mm) that encloses the region."""
-        ...
-
-
-def as_points(points_lps: np.ndarray) -> np.ndarray:
-    """Check and convert an ``(N, 3)`` array of points to float64."""
-    points = np.asarray(points_lps, dtype=np.float64)
-    if points.ndim != 2 or points.shape[1] != 3:
-        raise ValueError(
-            f'Argument "points_lps" must have shape (N, 3), got {tuple(np.shape(points_lps))}.'
-        )
-    return points
 
 
 @dataclass(frozen=True)
@@ -170,8 +136,6 @@ def build_region(spec: RoiSpec) -> Region:
     """
     shape = RoiShape(spec.shape)
     if shape is RoiShape.MASK:
-        from sigreport.rois.masks import load_mask_region
-
         if spec.mask is None:
             raise ValueError(f'RoiSpec "{spec.id}" has shape mask but no mask path.')
         return load_mask_region(spec.mask, roi_id=spec.id, segment=spec.segment, label=spec.label)

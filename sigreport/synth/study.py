@@ -22,7 +22,14 @@ import SimpleITK as sitk
 from pydicom.uid import generate_uid
 
 from sigreport.errors import InputError
-from sigreport.model import EnhancementPattern, RoiKind, Role
+from sigreport.model import (
+    ENHANCEMENT_PAIRS,
+    SUPPRESSION_PAIRS,
+    EnhancementPattern,
+    RoiKind,
+    Role,
+    first_pair,
+)
 from sigreport.synth import phantom, physics
 from sigreport.synth.geometry import SeriesGeometry, model_image, plan_geometry, sample
 from sigreport.synth.physics import rician
@@ -45,11 +52,6 @@ from sigreport.synth.writer import (
 TRUTH_SCHEMA = "sigreport-truth/1"
 ROI_PURITY = 0.95  # every ROI voxel must be at least this fraction of its `contains` tissues
 GAIN_TARGET = 2500.0  # stored values peak near this times a random factor in [0.6, 1.6]
-
-# Pairs in the order the contract picks them (interface.md, suppression / enhancement).
-FAT_PAIRS = ((Role.T1, Role.T1FS), (Role.T1POST, Role.T1POSTFS), (Role.T2, Role.T2FS),
-             (Role.T2, Role.STIR))  # fmt: skip
-ENHANCEMENT_PAIRS = ((Role.T1, Role.T1POST), (Role.T1FS, Role.T1POSTFS))
 
 
 @dataclass(frozen=True)
@@ -121,7 +123,7 @@ def _truth_rules() -> dict[str, float]:
 
 
 def _roi_mask(grid: phantom.Grid, roi: RoiPlan) -> np.ndarray:
-    """Voxels whose centre lies inside the ROI (interface.md membership rule)."""
+    """Voxels whose centre lies inside the ROI (docs/usage.md membership rule)."""
     x, y, z = grid.points((slice(None), slice(None), slice(None)))
     c = roi.center_mm
     r = float(roi.radius_mm or 0.0)
@@ -132,7 +134,7 @@ def _roi_mask(grid: phantom.Grid, roi: RoiPlan) -> np.ndarray:
 
 def _series_roi_mask(geo: SeriesGeometry, roi: RoiPlan) -> np.ndarray:
     """Voxels of a series grid (array ``[slice, row, column]``) whose centre lies inside the
-    ROI (interface.md membership rule; PS3.3 C.7.6.2.1.1 voxel centres). Only the index box
+    ROI (docs/usage.md membership rule; PS3.3 C.7.6.2.1.1 voxel centres). Only the index box
     around the ROI is evaluated."""
     cols, rows, slices = geo.size
     axes_dir = np.column_stack([geo.row, geo.column, geo.normal])  # orthonormal
@@ -297,12 +299,10 @@ def _ratio_flags(
             return None
         return 100.0 * (1.0 - ratio[pair[1]] / ratio[pair[0]])
 
-    def first(pairs: tuple[tuple[Role, Role], ...]) -> tuple[Role, Role] | None:
-        return next((p for p in pairs if p[0] in ratio and p[1] in ratio), None)
-
-    fluid = drop((Role.T2, Role.FLAIR) if Role.T2 in ratio and Role.FLAIR in ratio else None)
-    fat = drop(first(FAT_PAIRS))
-    enh_pair = first(ENHANCEMENT_PAIRS)
+    # The pairs characterization uses (sigreport.model, docs/usage.md), first the study has.
+    fluid = drop(first_pair(SUPPRESSION_PAIRS["fluid"], ratio))
+    fat = drop(first_pair(SUPPRESSION_PAIRS["fat"], ratio))
+    enh_pair = first_pair(ENHANCEMENT_PAIRS, ratio)
     enh = None
     if enh_pair is not None and ratio[enh_pair[0]] > 0:
         enh = 100.0 * (ratio[enh_pair[1]] / ratio[enh_pair[0]] - 1.0)
@@ -468,7 +468,7 @@ def generate_study(
         A scenario TOML path, or the name of a bundled demo (see :func:`demo_scenarios`).
     out_dir
         Output folder; must not exist or be empty. Receives ``study/`` (DICOM), ``case.toml``
-        (the interface.md case file) and ``truth.json`` (the expected values, for tests).
+        (the case file of docs/usage.md) and ``truth.json`` (the expected values, for tests).
     seed, motion, field_strength_t
         Override the scenario's values (None: keep them). The output is a deterministic function
         of the scenario and these arguments.

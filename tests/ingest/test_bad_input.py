@@ -123,9 +123,13 @@ def test_good_files_survive_bad_neighbours(tmp_path: Path) -> None:
 def test_progress_is_called_per_file(tmp_path: Path) -> None:
     write_classic_series(tmp_path / "a" / "b", _stored(3))
     (tmp_path / "x.txt").write_text("hello")
-    calls: list[tuple[int, int]] = []
-    index_study(tmp_path, progress=lambda done, total: calls.append((done, total)))
-    assert calls == [(1, 4), (2, 4), (3, 4), (4, 4)]
+    calls: list[tuple[str, int | None, int | None]] = []
+
+    def progress(message: str, done: int | None = None, total: int | None = None) -> None:
+        calls.append((message, done, total))
+
+    index_study(tmp_path, progress=progress)
+    assert calls == [("indexing files", k, 4) for k in (1, 2, 3, 4)]
 
 
 def test_undecodable_pixels_name_the_file(tmp_path: Path) -> None:

@@ -1,4 +1,4 @@
-"""The ``scan`` outputs: the interface.md ``scan --json`` object and the rich table."""
+"""The ``scan`` outputs: the docs/usage.md ``scan --json`` object and the rich table."""
 
 from __future__ import annotations
 
@@ -13,7 +13,7 @@ from sigreport.ingest import index_study, print_scan_table, scan_to_json
 
 from builders.dicom import CORONAL, write_classic_series
 
-SERIES_KEYS = {  # interface.md, "scan --json"
+SERIES_KEYS = {  # docs/usage.md, "scan --json"
     "series_instance_uid", "series_number", "stack", "description", "modality", "role",
     "role_reason", "confidence", "n_instances", "size", "spacing_mm", "frame_of_reference_uid",
     "warnings",

@@ -55,7 +55,7 @@ def test_cyst_follows_fluid_and_is_suppressed_on_flair(build, rules):
     assert got.signal[T2].ratio == pytest.approx(3.0)
     fluid = got.suppression["fluid"]
     assert (fluid.source, fluid.target) == (T2, FLAIR)
-    # drop = 100 (1 - (100/500) / (1800/600)) = 93.33 % (interface.md definition)
+    # drop = 100 (1 - (100/500) / (1800/600)) = 93.33 % (docs/usage.md definition)
     assert fluid.drop_percent == pytest.approx(100 * (1 - 0.2 / 3.0))
     assert fluid.suppressed is True
     assert "follows-fluid" in got.behaviour and "t2-bright-not-fluid" not in got.behaviour
@@ -137,10 +137,10 @@ def test_missing_pairs_give_null_fields(build, rules):
     assert "follows-fluid" not in out["behaviour"] and "non-enhancing" not in out["behaviour"]
 
 
-def test_lesion_json_has_exactly_the_interface_keys(build, rules):
+def test_lesion_json_has_exactly_the_contract_keys(build, rules):
     lesion = build.lesion({T1: 200.0, T2: 1800.0, FLAIR: 100.0})
     out = _one(characterize(build.study([lesion, _wm(build, [T1, T2, FLAIR])]), rules)).to_json()
-    # interface.md findings.json lesion object
+    # docs/usage.md findings.json lesion object
     assert set(out) == {
         "id",
         "site",
@@ -488,7 +488,7 @@ def _thick(build, role):
 
 def test_pattern_comes_from_the_pair_with_the_finest_voxels(build, rules):
     # On 6 mm slices the rim is averaged into the core (solid-looking); the 1 mm pair shows the
-    # rim. The percent still comes from the first pair, T1 -> T1POST (interface.md).
+    # rim. The percent still comes from the first pair, T1 -> T1POST (docs/usage.md).
     lesion = build.lesion(
         {
             T1: build.series(400.0, shell=400.0, core=400.0),

@@ -1,7 +1,7 @@
 """Properties of the characterization (hypothesis).
 
 Every conclusion is a ratio of medians on one series, so the arbitrary scaling that each MR
-series carries must cancel (interface.md, enhancement.percent: "Normalizing by the reference
+series carries must cancel (docs/usage.md, enhancement.percent: "Normalizing by the reference
 cancels the arbitrary scaling that each series carries"): multiplying any one series by a
 positive factor changes no ratio, grade, percent or flag. Swapping lesion and reference inverts
 the ratio.

@@ -24,7 +24,7 @@ def _site(tmp_path: Path, bundled: Path, name: str, edit) -> Path:
 
 
 def test_bundled_lexicon_loads(rules):
-    # interface.md findings.json: defaults hyper >= 1.10, hypo <= 0.90, enhancing >= 15 %,
+    # docs/usage.md findings.json: defaults hyper >= 1.10, hypo <= 0.90, enhancing >= 15 %,
     # suppressed >= 50 %, flow void ratio <= 0.3.
     t = rules.thresholds
     assert (t.grade.hyper_min_ratio, t.grade.hypo_max_ratio) == (1.10, 0.90)

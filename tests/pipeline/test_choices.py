@@ -1,4 +1,4 @@
-"""Which series is measured for each role, and which is the anchor (interface.md, Series roles;
+"""Which series is measured for each role, and which is the anchor (docs/usage.md, Series roles;
 the case file's [roles] and [options] anchor)."""
 
 from __future__ import annotations
@@ -53,7 +53,7 @@ def _case(**kwargs) -> Case:
 
 
 def test_two_series_of_one_role_measure_the_finest_and_name_the_other():
-    # interface.md: "the one with the smallest voxel volume is measured and qc names the other"
+    # docs/usage.md: "the one with the smallest voxel volume is measured and qc names the other"
     coarse = _stack(3, Role.T2, (0.9, 0.9, 5.0))
     fine = _stack(7, Role.T2, (1.0, 1.0, 1.0))
     measured, notes = choose_measured(_index(coarse, fine), {})

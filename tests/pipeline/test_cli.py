@@ -14,6 +14,8 @@ from typer.testing import CliRunner
 
 from sigreport.cli import app
 
+from builders.study import write_study
+
 runner = CliRunner()
 
 
@@ -133,3 +135,58 @@ def test_a_bug_exits_1_and_keeps_the_traceback_in_outdir(tmp_path: Path, monkeyp
     assert result.exit_code == 1
     log = (out / "error.log").read_text()
     assert "RuntimeError: deliberate failure" in log and "Traceback" in log
+
+
+def _display(terminal: bool):
+    import io
+
+    from rich.console import Console
+
+    from sigreport.cli import ProgressDisplay
+
+    buffer = io.StringIO()
+    console = Console(file=buffer, force_terminal=terminal, width=100, highlight=False)
+    return ProgressDisplay(console=console), buffer
+
+
+def test_progress_shows_header_values_as_text_not_markup():
+    # "[/]" closes nothing: read as rich markup it would raise MarkupError; "[b]" would vanish.
+    display, buffer = _display(terminal=False)
+    with display as progress:
+        progress("loading T2: series 3 (t2 [b]tse[/] <i>)")
+        for k in range(1, 4):
+            progress("indexing files [/]", k, 3)
+        progress("writing out [x]")
+    lines = buffer.getvalue().splitlines()
+    # Off a terminal a counted step prints its line once, not once per file.
+    assert lines == [
+        "… loading T2: series 3 (t2 [b]tse[/] <i>)",
+        "… indexing files [/]",
+        "… writing out [x]",
+    ]
+
+
+def test_progress_bar_on_a_terminal_takes_header_values_as_text():
+    display, buffer = _display(terminal=True)
+    with display as progress:
+        for k in range(1, 4):
+            progress("loading [/] series", k, 3)
+        progress("done [b]")
+    assert "done [b]" in buffer.getvalue()
+
+
+def test_report_progress_names_each_stage(tmp_path: Path):
+    written = write_study(tmp_path / "mini")
+    result = runner.invoke(
+        app, ["report", "--case", str(written.case_path), "--out", str(tmp_path / "out")]
+    )
+    assert result.exit_code == 0, result.output
+    for step in (
+        "indexing",
+        "loading T2: series 3 (t2 [test] <b>)",
+        "measuring L1",
+        "characterizing",
+        "writing findings.json",
+        "writing sr.dcm",
+    ):
+        assert step in result.output, step

@@ -48,8 +48,8 @@ def test_nan_is_refused_not_written(findings):
         findings_json(findings)
 
 
-def test_interface_example_validates(validator):
-    # The findings.json example of interface.md, verbatim in its values.
+def test_the_contract_example_validates(validator):
+    # The findings.json example of the contract (docs/usage.md), verbatim in its values.
     example = {
         "schema": "sigreport-findings/1",
         "tool": {"name": "sigreport", "version": "0.1.0"},

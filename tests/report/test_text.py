@@ -10,8 +10,11 @@ import pytest
 
 from sigreport import lexicon
 from sigreport.errors import InputError
+from sigreport.measure import load_rules
+from sigreport.model import BehaviourPhrase, LesionPhrases
+from sigreport.report.findings import phrases_from_findings
 from sigreport.report.text import md_escape, render_text, report_context
-from sigreport.report.wording import Phrases, load_wording
+from sigreport.report.wording import load_wording
 
 XSS = "<script>alert(1)</script>"
 
@@ -20,6 +23,11 @@ def _lesion_block(text: str, lesion_id: str) -> str:
     start = text.index(f"{lesion_id}: ")
     nxt = re.search(r"\n(#+ )?L\d: ", text[start + 1 :])
     return text[start : start + 1 + nxt.start()] if nxt else text[start:]
+
+
+def _phrases(findings, site=None):
+    """The words characterization would have chosen for the fixture's lesions."""
+    return phrases_from_findings(findings, load_rules(site))
 
 
 @pytest.fixture(scope="module")
@@ -87,18 +95,34 @@ def test_markdown_escapes_header_and_case_file_values(texts):
 
 
 def test_behaviour_phrases_are_listed(findings):
-    wording, phrases = load_wording(), Phrases()
-    context = report_context(findings, wording, phrases)
+    wording = load_wording()
+    context = report_context(findings, wording, phrases_from_findings(findings, load_rules()))
     for lesion, source in zip(context["lesions"], findings["lesions"], strict=True):
         assert len(lesion["behaviours"]) == len(source["behaviour"])
-    # Whether or not the characterization rules know the key, its words appear.
-    phrase, considerations = phrases.behaviour("follows-fluid")
-    assert phrase
+    rule = load_rules().behaviour[findings["lesions"][0]["behaviour"][0]]
     line = context["lesions"][0]["behaviours"][0]
-    assert phrase[:1].upper() + phrase[1:] in line
-    if considerations:
-        assert "consider" in line
-    assert phrases.behaviour("no-such-rule-xyz") == ("no such rule xyz", ())
+    assert line.startswith(rule.phrase[:1].upper() + rule.phrase[1:])
+    assert "consider" in line and rule.considerations[0] in line
+
+
+def test_the_report_renders_the_words_it_is_given_and_computes_none(findings):
+    lesion = findings["lesions"][0]
+    role = next(r for r, s in lesion["signal"].items() if s is not None and s["ratio"] is not None)
+    carried = LesionPhrases(
+        grades={role: "strangely graded"},
+        behaviour=(BehaviourPhrase(lesion["behaviour"][0], "a carried phrase", ("x-thing",)),),
+    )
+    context = report_context(findings, load_wording(), {lesion["id"]: carried})
+    first = context["lesions"][0]
+    assert "strangely graded" in first["paragraph"]
+    assert (
+        first["behaviours"][0].startswith("A carried phrase")
+        and "x-thing" in first["behaviours"][0]
+    )
+    # Without words for a key, the key itself is read, hyphens as spaces.
+    bare = report_context(findings, load_wording(), {})["lesions"][0]
+    key = lesion["behaviour"][0]
+    assert bare["behaviours"][0].startswith((key[:1].upper() + key[1:]).replace("-", " "))
 
 
 def test_a_site_can_reword_without_code(tmp_path, findings):
@@ -113,7 +137,7 @@ def test_a_site_can_reword_without_code(tmp_path, findings):
     (site / "templates" / "report.txt.j2").write_text(
         "SITE {% for l in lesions %}{{ l.paragraph }}{% endfor %}\n", encoding="utf-8"
     )
-    context = report_context(findings, load_wording(site), Phrases(site))
+    context = report_context(findings, load_wording(site), _phrases(findings, site))
     markdown, plain = render_text(context, site)
     assert plain.startswith("SITE ") and "Signal is nulled on FLAIR" in plain
     assert "Signal is nulled on FLAIR" in markdown  # bundled md template, site wording
@@ -123,7 +147,7 @@ def test_templates_are_strict_about_undefined_names(tmp_path, findings):
     site = tmp_path / "site"
     (site / "templates").mkdir(parents=True)
     (site / "templates" / "report.md.j2").write_text("{{ no_such_name }}\n", encoding="utf-8")
-    context = report_context(findings, load_wording(), Phrases())
+    context = report_context(findings, load_wording(), _phrases(findings))
     with pytest.raises(InputError, match="report.md.j2 .*UndefinedError.*no_such_name"):
         render_text(context, site)
 
@@ -151,7 +175,7 @@ def test_wording_with_an_unknown_placeholder_names_the_key(tmp_path, findings):
         encoding="utf-8",
     )
     with pytest.raises(InputError, match=r"\[sentences\] size: cannot fill"):
-        report_context(findings, load_wording(site), Phrases(site))
+        report_context(findings, load_wording(site), _phrases(findings, site))
 
 
 def test_wrapping_keeps_a_number_with_its_unit():
@@ -168,7 +192,7 @@ def test_a_negative_drop_reads_as_brighter_not_as_a_negative_drop(findings):
     # would read as a typo to a radiologist.
     lesion = findings["lesions"][0]
     lesion["suppression"]["fluid"].update(drop_percent=-42.0, suppressed=False)
-    context = report_context(findings, load_wording(), Phrases())
+    context = report_context(findings, load_wording(), _phrases(findings))
     markdown, plain = render_text(context)
     block = " ".join(_lesion_block(plain, lesion["id"]).split())
     assert "relatively 42 % brighter than on T2" in block

@@ -11,10 +11,12 @@ import pytest
 
 from sigreport import lexicon
 from sigreport.errors import InputError
+from sigreport.measure import load_rules
 from sigreport.report import write_report
+from sigreport.report.findings import phrases_from_findings
 from sigreport.report.html import render_html
 from sigreport.report.text import render_text, report_context
-from sigreport.report.wording import Phrases, fill, load_wording
+from sigreport.report.wording import fill, load_wording
 
 # Classic server-side template injection payloads (jinja2's own sandbox documentation names
 # attribute access to __class__/__globals__ as what the SandboxedEnvironment blocks).
@@ -39,7 +41,9 @@ def site(tmp_path):
 def test_a_text_template_cannot_reach_python(site, findings, payload, name, tmp_path, monkeypatch):
     monkeypatch.chdir(tmp_path)
     (site / "templates" / name).write_text(payload + "\n", encoding="utf-8")
-    context = report_context(findings, load_wording(), Phrases())
+    context = report_context(
+        findings, load_wording(), phrases_from_findings(findings, load_rules())
+    )
     with pytest.raises(InputError, match=rf"lexicon template {re.escape(name)}"):
         render_text(context, site)
     assert not (tmp_path / "PWNED").exists()
@@ -67,14 +71,18 @@ def test_the_html_template_is_autoescaped_even_from_a_site_folder(site, findings
     (site / "templates" / "report.html.j2").write_text(
         "{% for n in qc %}<p>{{ n.message }}</p>{% endfor %}", encoding="utf-8"
     )
-    context = report_context(findings, load_wording(), Phrases())
-    html = render_html(context, findings, {}, load_wording(), site)
+    context = report_context(
+        findings, load_wording(), phrases_from_findings(findings, load_rules())
+    )
+    html = render_html(context, findings, {}, load_wording(), site, iso_band=(0.9, 1.1))
     assert "<script>" not in html and "&lt;script&gt;" in html
 
 
 def test_a_broken_site_template_names_the_template(site, findings):
     (site / "templates" / "report.txt.j2").write_text("{% for x in %}\n", encoding="utf-8")
-    context = report_context(findings, load_wording(), Phrases())
+    context = report_context(
+        findings, load_wording(), phrases_from_findings(findings, load_rules())
+    )
     with pytest.raises(InputError, match=r"lexicon template report\.txt\.j2"):
         render_text(context, site)
 
@@ -111,7 +119,9 @@ def _lines_with(text: str, needle: str) -> list[str]:
 def test_cr_lf_in_a_header_value_adds_no_line_to_the_text_reports(findings):
     findings["study"]["accession_number"] = CONTROL
     findings["series"][0]["description"] = "t1\nFAKE SERIES LINE"
-    context = report_context(findings, load_wording(), Phrases())
+    context = report_context(
+        findings, load_wording(), phrases_from_findings(findings, load_rules())
+    )
     markdown, plain = render_text(context)
     for text in (markdown, plain):
         assert not any(line.startswith("!! WARNING: fabricated") for line in text.splitlines())
@@ -138,14 +148,18 @@ def test_no_control_character_reaches_the_page(findings, tmp_path, key_slices, s
 
 def test_a_lone_surrogate_in_a_header_value_does_not_break_the_writer(findings, tmp_path):
     findings["series"][0]["description"] = "bad \udce9 byte"
-    context = report_context(findings, load_wording(), Phrases())
+    context = report_context(
+        findings, load_wording(), phrases_from_findings(findings, load_rules())
+    )
     markdown, plain = render_text(context)
     assert "bad \ufffd byte" in plain
 
 
 def test_site_templates_still_work_after_cleaning(site, findings):
     shutil.copy(lexicon.bundled_dir() / "templates" / "report.txt.j2", site / "templates")
-    context = report_context(findings, load_wording(), Phrases())
+    context = report_context(
+        findings, load_wording(), phrases_from_findings(findings, load_rules())
+    )
     assert render_text(context, site)[1] == render_text(context)[1]
 
 
@@ -159,6 +173,8 @@ def test_site_templates_still_work_after_cleaning(site, findings):
 )
 def test_a_site_html_template_cannot_turn_escaping_off(site, findings, template):
     (site / "templates" / "report.html.j2").write_text(template, encoding="utf-8")
-    context = report_context(findings, load_wording(), Phrases())
+    context = report_context(
+        findings, load_wording(), phrases_from_findings(findings, load_rules())
+    )
     with pytest.raises(InputError, match=r"lexicon template report\.html\.j2.*autoescaping"):
-        render_html(context, findings, {}, load_wording(), site)
+        render_html(context, findings, {}, load_wording(), site, iso_band=(0.9, 1.1))

@@ -1,4 +1,4 @@
-"""The case file: every field validated, every problem reported at once (interface.md)."""
+"""The case file: every field validated, every problem reported at once (docs/usage.md)."""
 
 from __future__ import annotations
 

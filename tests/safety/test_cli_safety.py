@@ -129,7 +129,7 @@ def test_messages_and_summaries_are_printed_verbatim_without_control_characters(
             "cautions": ["[bold]draft[/bold]"],
         }
     )
-    cli._status_printer()("indexing /data/[/x]\x1b]0;t\x07")
+    cli.ProgressDisplay()("indexing /data/[/x]\x1b]0;t\x07")
     with pytest.raises(Exception):  # noqa: B017 - typer.Exit
         raise cli._fail("case [/x] \x1b[31mbad")
     err = capsys.readouterr().err

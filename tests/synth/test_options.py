@@ -88,7 +88,7 @@ def test_useless_descriptions_hide_the_role(tools, tmp_path_factory):
     assert descriptions == {"SERIES 1", "SERIES 2", "SERIES 3"}
 
 
-def test_case_file_follows_the_interface(tiny):
+def test_case_file_follows_the_contract(tiny):
     import tomllib
 
     case = tomllib.loads(tiny.study.case_path.read_text())
