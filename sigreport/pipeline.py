@@ -207,6 +207,7 @@ def run_report(
     force: bool = False,
     site_lexicon: Path | None = None,
     progress: Progress | None = None,
+    study_index: StudyIndex | None = None,
 ) -> ReportRun:
     """Place the case's ROIs on every series of the study, measure, characterize and write the
     report folder.
@@ -224,6 +225,10 @@ def run_report(
         ``[options] register``, whose default is True.
     site_lexicon
         A site's lexicon folder; wins over the case file's ``lexicon``.
+    study_index
+        The study's index when it was built elsewhere (``sigreport.archive`` builds it from an
+        archive's metadata, with the fetched series' instances under ``study_dir``); the study
+        folder is then not indexed again.
     """
     from sigreport.align import identity_alignment, register_rigid
     from sigreport.ingest import index_study, load_stack
@@ -255,8 +260,11 @@ def run_report(
             f"{out_dir} is inside the study folder {study_dir}; the input is never written to"
         )
 
-    _say(progress, f"indexing {study_dir}")
-    index = index_study(Path(study_dir), site_lexicon=site)
+    if study_index is None:
+        _say(progress, f"indexing {study_dir}")
+        index = index_study(Path(study_dir), site_lexicon=site)
+    else:
+        index = study_index
     if not index.stacks:
         reasons = "; ".join(f"{s.path.name}: {s.reason}" for s in index.skipped[:5])
         raise InputError(
