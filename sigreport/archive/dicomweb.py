@@ -134,10 +134,10 @@ class Archive:
     timeout_s
         (connect, read) timeout of every request in seconds (default 10 s, 120 s).
     max_attempts
-        Attempts per request when the answer is 408, 429 or 5xx, or the connection is refused
-        (default 4).
+        Attempts per request when the answer is 408, 429 or 5xx, or the request fails (refused
+        connection, timeout) (default 3).
     backoff_s
-        The first wait between attempts; each further wait doubles (default 1 s).
+        The first wait between attempts; each further wait doubles (default 0.5 s).
     session
         A ``requests.Session`` to use (tests); its ``verify`` is set to True or the CA bundle.
     """
@@ -148,13 +148,11 @@ class Archive:
         *,
         credentials: Credentials | None = None,
         timeout_s: tuple[float, float] = (10.0, 120.0),
-        max_attempts: int = 4,
-        backoff_s: float = 1.0,
+        max_attempts: int = 3,
+        backoff_s: float = 0.5,
         session: requests.Session | None = None,
     ) -> None:
         from dicomweb_client.api import DICOMwebClient
-        from requests.adapters import HTTPAdapter
-        from urllib3.util.retry import Retry
 
         parts = urlsplit(url)
         if parts.scheme not in ("http", "https") or not parts.hostname:
@@ -183,29 +181,15 @@ class Archive:
             session.headers["Authorization"] = f"Bearer {self.credentials.token}"
         elif self.credentials.user:
             session.auth = (self.credentials.user, self.credentials.password or "")
-        # Refused connections are retried by urllib3 (connect errors only: a request that may
-        # have reached the server is never sent twice by this layer).
-        adapter = HTTPAdapter(
-            max_retries=Retry(
-                total=None,
-                connect=self.max_attempts - 1,
-                read=0,
-                redirect=3,
-                status=0,
-                other=0,
-                backoff_factor=backoff_s,
-            )
-        )
-        session.mount("http://", adapter)
-        session.mount("https://", adapter)
         session.hooks["response"].append(self._record)
         logging.getLogger("retrying").setLevel(logging.ERROR)
         try:
             self._client = DICOMwebClient(self.url, session=session, timeout=timeout_s)
         except ValueError as exc:
             raise InputError(f"--dicomweb {url!r}: {exc}") from None
-        # HTTP-level retries (dicomweb_client uses the ``retrying`` package: waits of
-        # 2**attempt * multiplier ms).
+        # dicomweb_client retries through the ``retrying`` package: on the listed answers and on
+        # any exception of the request (refused connection, timeout), waiting
+        # 2**attempt * multiplier ms, i.e. backoff_s, 2 backoff_s, 4 backoff_s...
         self._client.set_http_retry_params(
             retry=self.max_attempts > 1,
             max_attempts=self.max_attempts,
