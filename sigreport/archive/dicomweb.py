@@ -187,6 +187,10 @@ class Archive:
             self._client = DICOMwebClient(self.url, session=session, timeout=timeout_s)
         except ValueError as exc:
             raise InputError(f"--dicomweb {url!r}: {exc}") from None
+        # dicomweb_client sends its own Host header without the port; a Host header names the
+        # port when it is not the scheme's default (RFC 9110 7.2), and archives build the
+        # retrieve URLs of their answers from it.
+        self._client.host = parts.netloc
         # dicomweb_client retries through the ``retrying`` package: on the listed answers and on
         # any exception of the request (refused connection, timeout), waiting
         # 2**attempt * multiplier ms, i.e. backoff_s, 2 backoff_s, 4 backoff_s...

@@ -163,6 +163,8 @@ def test_report_from_the_archive_equals_a_folder_run_fetches_only_needed_series_
     sr_bytes = (tmp_path / "web" / "sr.dcm").read_bytes()
     sr = pydicom.dcmread(io.BytesIO(sr_bytes))
     assert f"archive: stored SOP instance {sr.SOPInstanceUID}" in result.stdout
+    # The archive's retrieve URL names this server, port included (the Host header, RFC 9110).
+    assert f"archive: retrieve URL {orthanc.url}/studies/{sr.StudyInstanceUID}/" in result.stdout
     found = requests.post(
         f"{orthanc.rest}/tools/lookup",
         data=str(sr.SOPInstanceUID),
