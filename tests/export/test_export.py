@@ -221,3 +221,23 @@ def test_free_text_holding_an_identifier_is_cleaned(tmp_path, made):
     text = (tmp_path / "out" / "report.txt").read_text()
     assert "right frontal ([removed], [removed])" in text
     assert "quillfeather" not in text.lower()
+
+
+def test_the_exported_findings_still_follow_the_schema(made):
+    import jsonschema
+
+    schema = json.loads((Path(__file__).parents[2] / "docs" / "findings.schema.json").read_text())
+    findings = json.loads((made["export"] / "findings.json").read_text())
+    jsonschema.Draft202012Validator(schema).validate(findings)
+
+
+def test_export_opens_no_network_connection(made, tmp_path, monkeypatch):
+    import socket
+
+    def refuse(*args: object, **kwargs: object) -> None:
+        raise AssertionError("a network connection was opened")
+
+    monkeypatch.setattr(socket.socket, "connect", refuse)
+    monkeypatch.setattr(socket, "create_connection", refuse)
+    export_report(made["report"], tmp_path / "out")
+    assert (tmp_path / "out" / "sr.dcm").is_file()
