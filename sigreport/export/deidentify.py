@@ -127,11 +127,22 @@ class Identifiers:
 
     def clean(self, text: str) -> str:
         """``text`` with every identifier of at least ``MIN_TEXT_LENGTH`` characters replaced
-        by ``[removed]`` (longest first, case-insensitively)."""
+        by ``[removed]`` (longest first, case-insensitively, see ``identifier_pattern``)."""
         for _what, value in sorted(self.values, key=lambda v: -len(v[1])):
             if len(value) >= MIN_TEXT_LENGTH:
-                text = re.sub(re.escape(value), REMOVED, text, flags=re.IGNORECASE)
+                text = re.sub(identifier_pattern(value), REMOVED, text, flags=re.IGNORECASE)
         return text
+
+
+def identifier_pattern(value: str) -> str:
+    """A regular expression finding ``value`` as a whole token: not glued to a letter or digit
+    on a side where ``value`` itself begins or ends with one, and, for an identifier made of
+    digits (an all-numeric patient ID), not inside a longer number either (``1571`` is not
+    found in ``1571.8``), so measured values are never taken for identifiers."""
+    glue = "0-9A-Za-z" + (".," if value.replace(".", "").isdigit() else "")
+    before = f"(?<![{glue}])" if value[:1].isalnum() else ""
+    after = f"(?![{glue}])" if value[-1:].isalnum() else ""
+    return before + re.escape(value) + after
 
 
 def name_variants(name: str) -> list[str]:

@@ -34,6 +34,7 @@ from sigreport.export.deidentify import (
     UidMap,
     deidentify_findings,
     deidentify_sr,
+    identifier_pattern,
 )
 
 Progress = Callable[[str], None]
@@ -172,17 +173,22 @@ def find_identifiers(
     """(file, what) for every original identifier or UID found in the files' bytes (text
     compared as UTF-8, case-insensitively; HTML-escaped forms included)."""
     import html
+    import re
 
-    needles: list[tuple[str, bytes]] = []
+    needles: list[tuple[str, re.Pattern[bytes]]] = []
     for what, text in identifiers.strings(min_length=MIN_SEARCHED_LENGTH):
         for form in {text, html.escape(text)}:
-            needles.append((what, form.lower().encode("utf-8")))
-    needles.extend(("original UID", uid.encode("ascii")) for uid in uid_map)
+            needles.append(
+                (what, re.compile(identifier_pattern(form).encode("utf-8"), re.IGNORECASE))
+            )
+    needles.extend(
+        ("original UID", re.compile(rb"(?<![0-9.])" + re.escape(uid.encode()) + rb"(?![0-9.])"))
+        for uid in uid_map
+    )
     found = []
     for name, data in files.items():
-        lowered = data.lower()
         for what, needle in needles:
-            if needle and needle in lowered:
+            if needle.search(data):
                 found.append((name, what))
     return found
 

@@ -116,3 +116,13 @@ def test_find_identifiers_sees_an_identifier_in_any_file():
     assert find_identifiers({"c": b"1.2.3.4.5"}, ids, {"1.2.3.4.5": "2.25.1"}) == [
         ("c", "original UID")
     ]
+
+
+def test_a_numeric_identifier_is_not_found_inside_a_measured_value():
+    ids = Identifiers((("patient id", "1571"), ("patient name", "DOE^JANE")))
+    assert (
+        ids.clean("median 1571.8, ratio 3.57; id 1571") == "median 1571.8, ratio 3.57; id [removed]"
+    )
+    assert find_identifiers({"t.csv": b"L1,T2,1571.8"}, ids, {}) == []
+    assert find_identifiers({"t.txt": b"patient 1571 seen"}, ids, {}) == [("t.txt", "patient id")]
+    assert ids.clean("seen by doe^jane.") == "seen by [removed]."
