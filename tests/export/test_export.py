@@ -125,6 +125,22 @@ def test_the_sr_carries_the_deidentification_attributes(made):
     assert purpose.CodeValue == "109104"
 
 
+def test_highdicom_reads_the_same_measurement_groups_from_both_srs(made):
+    import highdicom as hd
+
+    def groups(path: Path) -> list[tuple[str, str, int]]:
+        sr = hd.sr.srread(path)
+        return [
+            (g.tracking_identifier, g.tracking_uid, len(g.get_measurements()))
+            for g in sr.content.get_image_measurement_groups()
+        ]
+
+    before, after = groups(made["report"] / "sr.dcm"), groups(made["export"] / "sr.dcm")
+    assert [(t, n) for t, _u, n in after] == [(t, n) for t, _u, n in before]
+    assert [u for _t, u, _n in after] != [u for _t, u, _n in before]  # tracking UIDs replaced
+    assert after and after[0][2] > 0
+
+
 def test_uids_are_replaced_consistently_across_the_sr_and_findings(made):
     original = pydicom.dcmread(made["report"] / "sr.dcm")
     sr = pydicom.dcmread(made["export"] / "sr.dcm")
