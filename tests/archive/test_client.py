@@ -11,6 +11,7 @@ import signal
 import socket
 import stat
 import threading
+import time
 from collections.abc import Iterator
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from pathlib import Path
@@ -36,6 +37,7 @@ class Script:
         self.statuses = statuses
         self.seen: list[tuple[str, dict[str, str]]] = []
         self.served_ok = False
+        self.delay_s = 0.0
 
 
 @pytest.fixture
@@ -45,6 +47,8 @@ def stub() -> Iterator[tuple[str, Script]]:
     class Handler(BaseHTTPRequestHandler):
         def do_GET(self) -> None:  # noqa: N802 - http.server's name
             script.seen.append((self.path, dict(self.headers)))
+            if script.delay_s:
+                time.sleep(script.delay_s)
             status = script.statuses[min(len(script.seen) - 1, len(script.statuses) - 1)]
             body = b""
             if status == 200:
@@ -95,6 +99,14 @@ def test_a_403_is_not_retried(stub):
     with pytest.raises(InputError, match="HTTP 403"):
         archive.search_series(STUDY)
     assert len(script.seen) == 1
+
+
+def test_a_server_that_does_not_answer_in_time_is_an_input_error(stub):
+    url, script = stub
+    script.delay_s = 1.0
+    archive = Archive(url, credentials=Credentials(), timeout_s=(2.0, 0.2), max_attempts=1)
+    with pytest.raises(InputError, match=r"no answer within 0.2 s"):
+        archive.search_series(STUDY)
 
 
 def test_basic_credentials_come_from_the_environment(stub, monkeypatch):

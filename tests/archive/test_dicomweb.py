@@ -183,6 +183,15 @@ def test_report_from_the_archive_equals_a_folder_run_fetches_only_needed_series_
     assert back[0] == sr
 
 
+def test_scan_from_the_archive_prints_the_series_table(archive_env, uploaded):
+    result = runner.invoke(
+        app, ["scan", "--dicomweb", archive_env.url, "--study-uid", uploaded["study_uid"]]
+    )
+    assert result.exit_code == 0, result.output
+    assert "LOCALIZER" in result.stdout and "UNKNOWN" in result.stdout
+    assert "T1FS" in result.stdout
+
+
 def test_a_wrong_password_exits_2_with_a_message_and_no_traceback(
     archive_env, uploaded, monkeypatch
 ):
