@@ -52,6 +52,35 @@ def _say(*parts: str | tuple[str, str], end: str = "\n") -> None:
     err.print(line, soft_wrap=True, highlight=False, end=end)
 
 
+DicomwebOption = Annotated[
+    str | None,
+    typer.Option(
+        "--dicomweb",
+        help="Read the study from this DICOMweb service instead of a folder (credentials from "
+        "SIGREPORT_DICOMWEB_USER / SIGREPORT_DICOMWEB_PASSWORD or SIGREPORT_DICOMWEB_TOKEN_FILE).",
+        show_default=False,
+    ),
+]
+StudyUidOption = Annotated[
+    str | None,
+    typer.Option(
+        "--study-uid", help="The StudyInstanceUID to read with --dicomweb.", show_default=False
+    ),
+]
+
+
+def _source(study_dir: Path | None, dicomweb: str | None, study_uid: str | None) -> None:
+    """A folder or an archive, not both; --study-uid goes with --dicomweb."""
+    if dicomweb is None:
+        if study_uid is not None:
+            raise _fail("--study-uid needs --dicomweb URL")
+        return
+    if study_dir is not None:
+        raise _fail("give STUDY_DIR or --dicomweb URL, not both")
+    if not study_uid:
+        raise _fail("--dicomweb needs --study-uid UID")
+
+
 def _fail(message: str) -> typer.Exit:
     _say(("sigreport:", "bold red"), " ", message)
     return typer.Exit(2)
@@ -143,14 +172,23 @@ def _root(
 @app.command()
 def scan(
     study_dir: Annotated[
-        Path, typer.Argument(help="Folder holding the study (searched recursively).")
-    ],
+        Path | None,
+        typer.Argument(help="Folder holding the study (searched recursively).", show_default=False),
+    ] = None,
     as_json: Annotated[bool, typer.Option("--json", help="Print the series list as JSON.")] = False,
     site_lexicon: LexiconOption = None,
+    dicomweb: DicomwebOption = None,
+    study_uid: StudyUidOption = None,
 ) -> None:
     """Index every DICOM file under STUDY_DIR, group into series, infer each series' role."""
     from sigreport.ingest import index_study, print_scan_table, scan_to_json
 
+    _source(study_dir, dicomweb, study_uid)
+    if dicomweb is not None:
+        _scan_archive(dicomweb, str(study_uid), as_json=as_json, site_lexicon=site_lexicon)
+        return
+    if study_dir is None:
+        raise _fail("give STUDY_DIR, or --dicomweb URL --study-uid UID")
     try:
         with ProgressDisplay(quiet=as_json) as progress:
             index = index_study(study_dir, progress=progress, site_lexicon=site_lexicon)
@@ -181,10 +219,23 @@ def report(
     ] = None,
     force: Annotated[bool, typer.Option("--force", help="Replace OUTDIR if it exists.")] = False,
     site_lexicon: LexiconOption = None,
+    dicomweb: DicomwebOption = None,
+    study_uid: StudyUidOption = None,
+    push: Annotated[
+        bool, typer.Option("--push", help="With --dicomweb: store sr.dcm in the archive (STOW-RS).")
+    ] = False,
 ) -> None:
     """Place the ROIs, carry them to every series, measure, characterize, write OUTDIR."""
     from sigreport.pipeline import run_report
 
+    _source(study_dir, dicomweb, study_uid)
+    if push and dicomweb is None:
+        raise _fail("--push needs --dicomweb URL --study-uid UID")
+    if dicomweb is not None:
+        _report_archive(
+            case, out, dicomweb, str(study_uid), register, force, site_lexicon, push=push
+        )
+        return
     try:
         with ProgressDisplay() as progress:
             run = run_report(
@@ -254,6 +305,98 @@ def demo(
         raise _bug(out / "report") from None
     _print_summary(run.findings)
     typer.echo(terminal_text(run.report_html))
+
+
+@app.command()
+def export(
+    report_dir: Annotated[Path, typer.Argument(help="A report folder written by `report`.")],
+    out: Annotated[Path, typer.Option("--out", help="The export folder to write.")] = ...,  # type: ignore[assignment]
+    deidentify: Annotated[
+        bool,
+        typer.Option(
+            "--deidentify",
+            help="Remove or replace every patient identifier, date and UID (DICOM PS3.15 Basic "
+            "Application Level Confidentiality Profile on sr.dcm). Required.",
+        ),
+    ] = False,
+    force: Annotated[bool, typer.Option("--force", help="Replace --out if it exists.")] = False,
+    site_lexicon: LexiconOption = None,
+) -> None:
+    """Copy a report folder for teaching or an external board, de-identified."""
+    from sigreport.export import export_report
+
+    if not deidentify:
+        raise _fail("export writes de-identified copies only: give --deidentify")
+    try:
+        with ProgressDisplay() as progress:
+            done = export_report(
+                report_dir, out, force=force, site_lexicon=site_lexicon, progress=progress
+            )
+    except InputError as exc:
+        raise _fail(str(exc)) from None
+    except Exception:
+        raise _bug(None) from None
+    typer.echo(terminal_text(str(done)))
+
+
+# --------------------------------------------------------------------------------------------
+# --dicomweb: the archive as source and sink (sigreport.archive)
+
+
+def _scan_archive(url: str, study_uid: str, *, as_json: bool, site_lexicon: Path | None) -> None:
+    from sigreport.archive import scan_archive
+    from sigreport.ingest import print_scan_table, scan_to_json
+
+    try:
+        with ProgressDisplay(quiet=as_json) as progress:
+            study = scan_archive(url, study_uid, site_lexicon=site_lexicon, progress=progress)
+    except InputError as exc:
+        raise _fail(str(exc)) from None
+    if as_json:
+        doc = scan_to_json(study.index)
+        doc["study_dir"] = f"{study.url}/studies/{study.study_uid}"
+        typer.echo(json.dumps(doc, indent=2))
+    else:
+        print_scan_table(study.index, Console(highlight=False, markup=False))
+    if not study.index.stacks:
+        raise _fail(f"no usable MR series in study {study_uid} at {url}")
+
+
+def _report_archive(
+    case: Path,
+    out: Path,
+    url: str,
+    study_uid: str,
+    register: bool | None,
+    force: bool,
+    site_lexicon: Path | None,
+    *,
+    push: bool,
+) -> None:
+    from sigreport.archive import report_from_archive
+
+    try:
+        with ProgressDisplay() as progress:
+            done = report_from_archive(
+                case,
+                out,
+                url=url,
+                study_uid=study_uid,
+                register=register,
+                force=force,
+                site_lexicon=site_lexicon,
+                progress=progress,
+                push=push,
+            )
+    except InputError as exc:
+        raise _fail(str(exc)) from None
+    except Exception:
+        raise _bug(out) from None
+    _print_summary(done.run.findings)
+    if done.stored is not None:
+        for line in done.stored.lines():
+            typer.echo(terminal_text(f"archive: {line}"))
+    typer.echo(terminal_text(str(done.run.report_html)))
 
 
 # --------------------------------------------------------------------------------------------

@@ -262,6 +262,7 @@ def plan_report(
     *,
     register: bool | None = None,
     progress: Progress | None = None,
+    study_index: StudyIndex | None = None,
 ) -> ReportPlan:
     """Index the study and decide what to measure: roles (the case file's ``[roles]`` first),
     one series per role, the ROIs in patient space, the anchor series and whether to register.
@@ -279,6 +280,10 @@ def plan_report(
         ``[options] register``, whose default is True.
     progress
         Told about each indexed file.
+    study_index
+        The study's index when it was built elsewhere (``sigreport.archive`` builds it from an
+        archive's metadata, with the fetched series' instances under ``study_dir``); the study
+        folder is then not indexed again.
 
     Raises
     ------
@@ -286,8 +291,11 @@ def plan_report(
         When the study holds no usable MR series, none with a measurable role, the case file's
         ``[roles]`` or ``anchor`` name no series, or a mask ROI cannot be read.
     """
-    say(progress, f"indexing {study_dir}")
-    index = index_study(Path(study_dir), progress=progress, bands=lexicon.role_bands)
+    if study_index is None:
+        say(progress, f"indexing {study_dir}")
+        index = index_study(Path(study_dir), progress=progress, bands=lexicon.role_bands)
+    else:
+        index = study_index
     if not index.stacks:
         reasons = "; ".join(f"{s.path.name}: {s.reason}" for s in index.skipped[:5])
         raise InputError(
@@ -473,6 +481,7 @@ def analyze_case(
     site_lexicon: Path | None = None,
     lexicon: Lexicon | None = None,
     progress: Progress | None = None,
+    study_index: StudyIndex | None = None,
 ) -> Analysis:
     """Every stage up to the findings: plan, load, align, measure, characterize, then the
     findings.json object and the key slices. Writes nothing.
@@ -493,6 +502,8 @@ def analyze_case(
         for a batch of cases.
     progress
         Told about each step (:class:`sigreport.model.Progress`).
+    study_index
+        As :func:`plan_report`.
 
     Returns
     -------
@@ -504,7 +515,12 @@ def analyze_case(
     if lexicon is None:
         lexicon = load_lexicon(site_lexicon if site_lexicon is not None else case.lexicon)
     plan = plan_report(
-        case, lexicon, resolve_study_dir(case, study_dir), register=register, progress=progress
+        case,
+        lexicon,
+        resolve_study_dir(case, study_dir),
+        register=register,
+        progress=progress,
+        study_index=study_index,
     )
     images = load_series(plan, progress=progress)
     aligned = align_series(plan, images, progress=progress)
@@ -543,6 +559,7 @@ def run_report(
     force: bool = False,
     site_lexicon: Path | None = None,
     progress: Progress | None = None,
+    study_index: StudyIndex | None = None,
 ) -> ReportRun:
     """Place the case's ROIs on every series of the study, measure, characterize and write the
     report folder (:func:`analyze_case`, then :func:`sigreport.report.write_report`).
@@ -562,6 +579,8 @@ def run_report(
         A site's lexicon folder; wins over the case file's ``lexicon``.
     progress
         Told about each step (:class:`sigreport.model.Progress`).
+    study_index
+        As :func:`plan_report` (an archive's study, fetched into ``study_dir``).
     """
     case = load_case(Path(case_path))
     # Every lexicon table is validated here, before any work (a missing site folder too).
@@ -569,7 +588,12 @@ def run_report(
     study = resolve_study_dir(case, study_dir)
     out_dir = check_outdir(out_dir, inputs=report_inputs(case, study, lexicon.site), force=force)
     analysis = analyze_case(
-        case, study_dir=study, register=register, lexicon=lexicon, progress=progress
+        case,
+        study_dir=study,
+        register=register,
+        lexicon=lexicon,
+        progress=progress,
+        study_index=study_index,
     )
     say(progress, f"writing {out_dir}")
     html = write_report(

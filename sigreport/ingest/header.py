@@ -244,6 +244,20 @@ def read_frames(path: Path, *, fast: bool = True) -> list[FrameRecord]:
         data, is not an MR image, or lacks geometry.
     """
     ds, status = read_dataset(path, fast=fast)
+    return frames_from_dataset(path, ds, status)
+
+
+def frames_from_dataset(path: Path, ds: Dataset, status: str | None = None) -> list[FrameRecord]:
+    """The frame records of a header already read (a file's, or an archive's metadata).
+
+    ``path`` names the instance in records and skip reasons; ``status`` is why the pixel data
+    are unusable (see ``read_dataset``), None when they are usable or not checked.
+
+    Raises
+    ------
+    SkipFile
+        As ``read_frames``.
+    """
     sop_class = _str(ds, "SOPClassUID") or _str(
         getattr(ds, "file_meta", Dataset()), "MediaStorageSOPClassUID"
     )

@@ -80,7 +80,24 @@ def index_study(
             skipped.append(SkippedFile(path=path, reason="not readable: nesting too deep"))
         if progress is not None:
             progress("indexing files", done, total)
+    return index_records(study_dir, records, skipped, bands=bands)
 
+
+def index_records(
+    study_dir: Path,
+    records: list[FrameRecord],
+    skipped: list[SkippedFile],
+    *,
+    bands: RoleBands | None = None,
+    site_lexicon: Path | None = None,
+) -> StudyIndex:
+    """The study index of frame records read elsewhere (``index_study`` reads them from files,
+    ``sigreport.archive`` from an archive's metadata): stacks, each stack's role, study details.
+
+    ``bands`` are the role bands (default: loaded from ``site_lexicon`` or the bundled lexicon).
+    """
+    if bands is None:
+        bands = load_role_bands(site_lexicon)
     stacks = []
     for stack in build_stacks(records):
         role, reason, confidence = _infer(stack.acquisition, stack.description, bands)
