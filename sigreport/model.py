@@ -195,6 +195,23 @@ class RoiShape(StrEnum):
     ELLIPSOID = "ellipsoid"
     BOX = "box"
     MASK = "mask"
+    SEED = "seed"  # one point; the lesion is grown from it on the anchor (docs/rois.md)
+
+
+@dataclass(frozen=True)
+class ViewerPosition:
+    """Where a reader pointed in a viewer (case file ``at``, docs/rois.md).
+
+    ``series`` is the SeriesNumber, ``image`` the InstanceNumber, ``row`` / ``column`` the
+    0-based pixel row and column of that image (fractions allowed), ``frame`` the 1-based frame
+    of a multi-frame file (None for single-frame files).
+    """
+
+    series: int
+    image: int
+    row: float
+    column: float
+    frame: int | None = None
 
 
 @dataclass(frozen=True)
@@ -214,6 +231,13 @@ class RoiSpec:
     segment: str | int | None = None
     label: int | None = None  # label value in a label image (default: any non-zero)
     reference: str | None = None  # lesions: the reference ROI id (resolved to the first one)
+    # or AUTO_REFERENCE: a mirror reference across the mid-sagittal plane (docs/rois.md)
+    at: ViewerPosition | None = None  # instead of center_mm: a viewer position
+    max_radius_mm: float | None = None  # seed: how far the grown region may reach
+
+
+# A lesion's ``reference = "auto"``.
+AUTO_REFERENCE = "auto"
 
 
 @dataclass(frozen=True)
