@@ -33,7 +33,7 @@ class RoiSettings:
     smoothing_iterations: int = 5
     leak_margin_mm: float = 1.0
     seed_min_voxels: int = 20
-    mirror_spacing_mm: float = 2.0
+    mirror_spacing_mm: float = 3.0
     midline_margin_mm: float = 5.0
 
 
