@@ -230,13 +230,15 @@ def run_report(
     from sigreport.measure import characterize, load_rules, measure_roi, noise_sigma
     from sigreport.report import write_report
     from sigreport.rois import (
-        build_region,
         load_case,
         max_diameter_mm,
         sample_region,
         union_bounds,
         volume_ml,
     )
+    from sigreport.rois.forms import place_roi_forms, provisional_regions
+    from sigreport.rois.settings import load_roi_settings
+    from sigreport.rois.viewer import resolve_viewer_positions
 
     case = load_case(Path(case_path))
     site = site_lexicon if site_lexicon is not None else case.lexicon
@@ -278,7 +280,10 @@ def run_report(
             f"no series under {study_dir} has a role that can be measured (all UNKNOWN)"
         )
 
-    regions = [build_region(spec) for spec in case.rois]
+    # ROI forms (docs/rois.md): `at` read on its own series; a seed stands in as its sphere.
+    roi_settings = load_roi_settings(site)
+    case, viewer_keys = resolve_viewer_positions(case, index)
+    regions = provisional_regions(case, roi_settings)
     anchor_role, anchor_reason = choose_anchor(case, measured, regions)
     anchor = measured[anchor_role]
     do_register = (
@@ -324,6 +329,22 @@ def run_report(
         )
 
     min_voxels = int(rules.min_voxels)
+    # ROI forms: `at` carried through its series' alignment, seeds grown, mirror references.
+    placed = place_roi_forms(
+        case,
+        regions,
+        viewer_keys=viewer_keys,
+        alignments=_alignments_by_key(
+            viewer_keys, index, measured, alignments, images[anchor_role], box, do_register, site
+        ),
+        anchor=anchor,
+        anchor_image=images[anchor_role],
+        settings=roi_settings,
+        max_cv=float(rules.thresholds.reference.max_cv),
+        min_voxels=min_voxels,
+    )
+    case, regions = placed.case, placed.regions
+    qc.extend(placed.qc)
     samples: dict[tuple[str, Role], Any] = {}
     measured_rois: list[MeasuredRoi] = []
     finest_role = min(measured, key=lambda r: measured[r].voxel_volume_mm3)
@@ -394,8 +415,44 @@ def run_report(
         {r.value: s for r, s in measured.items()},
         site_lexicon=site,
         force=force,
+        extra_files=placed.files,
     )
     return ReportRun(out_dir=out_dir, report_html=html, findings=findings)
+
+
+def _alignments_by_key(
+    viewer_keys: Mapping[str, str],
+    index: StudyIndex,
+    measured: Mapping[Role, Stack],
+    alignments: Mapping[Role, Alignment],
+    anchor_image: sitk.Image,
+    box: Any,
+    do_register: bool,
+    site: Path | None,
+) -> dict[str, Alignment]:
+    """Each stack's alignment to the anchor by stack key; a series named by an ``at`` that is
+    not measured is aligned here like the measured ones."""
+    from sigreport.align import identity_alignment, register_rigid
+    from sigreport.ingest import load_stack
+
+    by_key = {stack.key: alignments[role] for role, stack in measured.items()}
+    anchor_frame = next(
+        (
+            s.frame_of_reference_uid
+            for r, s in measured.items()
+            if alignments[r].method == "identity"
+        ),
+        None,
+    )
+    for key in sorted(set(viewer_keys.values()) - set(by_key)):
+        stack = next(s for s in index.stacks if s.key == key)
+        other_frame = stack.frame_of_reference_uid != anchor_frame
+        by_key[key] = (
+            register_rigid(anchor_image, load_stack(stack), box_mm=box, site_lexicon=site)
+            if do_register or other_frame
+            else identity_alignment("frame-of-reference")
+        )
+    return by_key
 
 
 def _inside(path: Path, folder: Path) -> bool:

@@ -88,6 +88,7 @@ def write_report(
     *,
     site_lexicon: Path | None = None,
     force: bool = False,
+    extra_files: Mapping[str, bytes] | None = None,
 ) -> Path:
     """Write every OUTDIR file of interface.md, atomically.
 
@@ -107,6 +108,9 @@ def write_report(
         A site lexicon folder (wording, templates, characterization rules).
     force:
         Replace an existing ``out_dir`` (only once the new report is complete).
+    extra_files:
+        More files for OUTDIR, relative path (``/``-separated, no ``..``) -> bytes, e.g. the
+        grown lesions' ``rois/<id>.nii.gz`` and ``rois/<id>-seg.dcm`` (docs/rois.md).
 
     Returns
     -------
@@ -129,6 +133,7 @@ def write_report(
     temp.mkdir()
     try:
         _build(temp, findings, key_slices, stacks, site_lexicon)
+        _write_extra(temp, extra_files or {})
         _replace(temp, out_dir)
     except BaseException:
         shutil.rmtree(temp, ignore_errors=True)
@@ -160,6 +165,16 @@ def _build(
     html = render_html(context, findings, per_lesion, wording, site)
     (folder / "report.html").write_text(html, encoding="utf-8")
     write_sr(folder / "sr.dcm", build_sr(findings, key_slices, stacks))
+
+
+def _write_extra(folder: Path, files: Mapping[str, bytes]) -> None:
+    for name, content in files.items():
+        parts = name.split("/")
+        if not name or name.startswith("/") or any(p in ("", ".", "..") for p in parts):
+            raise ValueError(f'Argument "extra_files" has an unsafe path {name!r}.')
+        path = folder.joinpath(*parts)
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_bytes(content)
 
 
 def _replace(temp: Path, out_dir: Path) -> None:

@@ -266,18 +266,21 @@ def mirror_reference(
     reason: str | None = None
     if sample.n_voxels < min_voxels:
         reason = f"holds {sample.n_voxels} anchor voxels (fewer than {min_voxels})"
-    else:
+    for other_id, other in lesions.items():
+        if reason is not None:
+            break
+        shared = int(np.count_nonzero(sample.mask & sample_region(other, anchor).mask))
+        if shared:
+            reason = f"overlaps lesion {other_id} ({shared} anchor voxels)"
+    if reason is None:
         values = sitk.GetArrayViewFromImage(anchor)[sample.mask].astype(np.float64)
         mean = float(values.mean())
         cv = float(values.std()) / mean if mean > 0 else math.inf
         if cv > max_cv:
-            reason = f"is not homogeneous (coefficient of variation {cv:.2f} on the anchor, above {max_cv:.2f})"
-        else:
-            for other_id, other in lesions.items():
-                shared = int(np.count_nonzero(sample.mask & sample_region(other, anchor).mask))
-                if shared:
-                    reason = f"overlaps lesion {other_id} ({shared} anchor voxels)"
-                    break
+            reason = (
+                f"is not homogeneous (coefficient of variation {cv:.2f} on the anchor, "
+                f"above {max_cv:.2f})"
+            )
     if reason is not None:
         note = QcNote(
             QcLevel.WARNING, "auto-reference-rejected", f"{where} {reason}; rejected as reference"

@@ -114,8 +114,8 @@ def test_a_mirror_onto_another_lesion_is_rejected(anchor):
 
 
 def test_a_heterogeneous_mirror_is_rejected(anchor):
-    """Across the ventricle wall: CSF and white matter in one ROI."""
-    spec, region = _lesion("L9", (-8.0, 0.0, 10.0), 9.0, "right periventricular")
+    """At the edge of the head: scalp, skull and brain in one ROI."""
+    spec, region = _lesion("L9", (-62.0, 0.0, 0.0), 6.0, "right temporal scalp")
     result = mirror_reference(
         spec, region, PLANE, anchor, {"L9": region}, reference_id="L9-auto", max_cv=0.2
     )
