@@ -283,7 +283,8 @@ def run_report(
     # ROI forms (docs/rois.md): `at` read on its own series; a seed stands in as its sphere.
     roi_settings = load_roi_settings(site)
     case, viewer_keys = resolve_viewer_positions(case, index)
-    regions = provisional_regions(case, roi_settings)
+    regions, roi_notes = provisional_regions(case, roi_settings, index)
+    qc.extend(roi_notes)
     anchor_role, anchor_reason = choose_anchor(case, measured, regions)
     anchor = measured[anchor_role]
     do_register = (

@@ -14,6 +14,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, replace
+from pathlib import Path
 
 import numpy as np
 import SimpleITK as sitk
@@ -28,6 +29,7 @@ from sigreport.model import (
     RoiKind,
     RoiShape,
     Stack,
+    StudyIndex,
 )
 from sigreport.rois.regions import Region, SphereRegion, build_region
 from sigreport.rois.settings import RoiSettings
@@ -52,16 +54,46 @@ class PlacedRois:
     files: dict[str, bytes] = field(default_factory=dict)
 
 
-def provisional_regions(case: Case, settings: RoiSettings) -> list[Region]:
-    """Each ROI's region before alignment; a seed is the sphere of ``max_radius_mm``."""
+def _dicom_modality(path: Path) -> str | None:
+    import pydicom
+
+    try:
+        with path.open("rb") as handle:
+            handle.seek(128)
+            if handle.read(4) != b"DICM":
+                return None
+        return str(pydicom.dcmread(path, stop_before_pixels=True).get("Modality", ""))
+    except Exception:  # unreadable: build_region reports it
+        return None
+
+
+def provisional_regions(
+    case: Case, settings: RoiSettings, index: StudyIndex | None = None
+) -> tuple[list[Region], list[QcNote]]:
+    """Each ROI's region before alignment, and notes.
+
+    A seed is the sphere of ``max_radius_mm``; a presentation state or SR outline is placed on
+    its referenced images' geometry (``index``, :mod:`sigreport.rois.annotations`).
+    """
+    from sigreport.rois.annotations import is_annotation_file, load_annotation_region
+
     regions: list[Region] = []
+    notes: list[QcNote] = []
     for spec in case.rois:
         if spec.shape is RoiShape.SEED:
             radius = spec.max_radius_mm or settings.seed_max_radius_mm
             regions.append(SphereRegion.of(spec.id, spec.center_mm, radius))  # type: ignore[arg-type]
+            continue
+        modality = _dicom_modality(spec.mask) if spec.mask is not None else None
+        if index is not None and spec.mask is not None and is_annotation_file(modality or ""):
+            region, texts = load_annotation_region(
+                spec.mask, index, roi_id=spec.id, pick=spec.segment
+            )
+            regions.append(region)
+            notes.extend(QcNote(QcLevel.INFO, "annotation", t) for t in texts)
         else:
             regions.append(build_region(spec))
-    return regions
+    return regions, notes
 
 
 def _free_id(wanted: str, taken: set[str]) -> str:

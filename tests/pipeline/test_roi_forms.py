@@ -7,6 +7,7 @@ import json
 import math
 
 import numpy as np
+import pydicom
 import pytest
 import SimpleITK as sitk
 
@@ -16,6 +17,8 @@ from sigreport.model import Role
 from sigreport.pipeline import run_report
 from sigreport.synth import generate_study
 from sigreport.synth.study import Motion
+
+from builders.annotations import Graphic, SrRegion, write_gsps, write_sr
 
 pytestmark = pytest.mark.slow
 
@@ -55,6 +58,15 @@ center_mm = [-20.0, 2.0, -20.0]
 reference = "R1"
 
 [[roi]]
+id = "L5full"
+kind = "lesion"
+site = "right temporal white matter"
+shape = "sphere"
+center_mm = [-20.0, 2.0, -20.0]
+radius_mm = 8.0
+reference = "R1"
+
+[[roi]]
 id = "L5auto"
 kind = "lesion"
 site = "right temporal white matter"
@@ -74,13 +86,64 @@ reference = "auto"
 """
 
 
+OUTLINES = """
+[[roi]]
+id = "L1pr"
+kind = "lesion"
+site = "right frontal white matter"
+shape = "mask"
+mask = "l1-pr.dcm"
+segment = "L1"
+reference = "R1"
+
+[[roi]]
+id = "L1sr"
+kind = "lesion"
+site = "right frontal white matter"
+shape = "mask"
+mask = "l1-sr.dcm"
+segment = "cyst"
+reference = "R1"
+"""
+
+
+def _outlines(study_dir, folder) -> None:
+    """L1 (the cyst, radius 8 mm at (-27, -33, 14)) outlined by a reader on the anchor: a
+    presentation state with a 5 mm circle on the 7 images through its centre, and an SR with a
+    5.5 mm ellipsoid (a volume surface) at its centre."""
+    index = index_study(study_dir)
+    stack = next(s for s in index.stacks if s.role is Role.T1POSTFS)
+    image = load_stack(stack)
+    x, y, z = image.TransformPhysicalPointToContinuousIndex((-27.0, -33.0, 14.0))
+    ks = [int(round(z)) + d for d in range(-3, 4)]
+    datasets = [pydicom.dcmread(stack.instances[k].path, stop_before_pixels=True) for k in ks]
+    centre = np.array([x + 0.5, y + 0.5])  # pixel coordinates: corner origin (PS3.3 C.10.5.1.2)
+    write_gsps(
+        folder / "l1-pr.dcm",
+        [Graphic("CIRCLE", np.stack([centre, centre + [5.0, 0.0]]), datasets, text="L1")],
+    )
+    c = np.array([-27.0, -33.0, 14.0])
+    axes = np.eye(3) * 5.5
+    ends = np.stack([c - axes[0], c + axes[0], c - axes[1], c + axes[1], c - axes[2], c + axes[2]])
+    write_sr(
+        folder / "l1-sr.dcm",
+        datasets,
+        [
+            SrRegion(
+                "cyst", "ELLIPSOID", ends, frame_of_reference_uid=datasets[0].FrameOfReferenceUID
+            )
+        ],
+    )
+
+
 @pytest.fixture(scope="module")
 def run(tmp_path_factory):
     tmp = tmp_path_factory.mktemp("forms")
     study = generate_study("neuro", tmp / "case")
     truth = json.loads(study.truth_path.read_text())
     at = _at_on(study.study_dir, truth, Role.T1FS, (-27.0, -33.0, 14.0))
-    case = study.case_path.read_text() + EXTRA.replace("{at}", at)
+    _outlines(study.study_dir, study.root)
+    case = study.case_path.read_text() + EXTRA.replace("{at}", at) + OUTLINES
     case_path = study.root / "forms.toml"
     case_path.write_text(case)
     result = run_report(case_path, tmp / "out", study_dir=study.study_dir)
@@ -115,9 +178,19 @@ def test_a_viewer_position_on_a_moved_series_measures_the_sphere_lesion(run):
     _same_medians(run[0].findings, "L1", "L1at")
 
 
-def test_a_seed_measures_like_the_sphere_inside_the_lesion(run):
+def test_a_presentation_state_outline_measures_the_sphere_lesion(run):
+    _same_medians(run[0].findings, "L1", "L1pr")
+
+
+def test_an_sr_region_measures_the_sphere_lesion(run):
+    _same_medians(run[0].findings, "L1", "L1sr")
+
+
+def test_a_seed_measures_like_the_lesion_given_as_a_sphere(run):
+    """The grown region is the whole lesion (an 8 mm solid lesion, neuro.toml), edge voxels
+    included: it compares with the sphere of the lesion's own size, L5full."""
     findings = run[0].findings
-    _same_medians(findings, "L5", "L5seed", k=4.0)
+    _same_medians(findings, "L5full", "L5seed")
     # The size is the grown lesion's (an 8 mm radius solid lesion), not the 5 mm sphere's.
     seed = _lesion(findings, "L5seed")
     assert seed["max_diameter_mm"] == pytest.approx(16.9, abs=2.0)
