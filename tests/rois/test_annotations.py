@@ -227,3 +227,17 @@ def test_sr_image_regions_2d_and_3d(anchor, neuro, tmp_path):
     assert np.array_equal(
         _mask(ball, image), _mask(SphereRegion.of("s", (-27.0, -33.0, 14.0), 5.0), image)
     )
+
+
+def test_an_outline_file_without_the_study_is_an_input_error(anchor, tmp_path):
+    from sigreport.rois.masks import load_mask_region
+
+    stack, _ = anchor
+    path = write_gsps(
+        tmp_path / "pr.dcm",
+        [Graphic("CIRCLE", np.array([[7.0, 8.0], [9.0, 8.0]]), _datasets(stack, [3]))],
+    )
+    with pytest.raises(
+        InputError, match="presentation state or SR outline needs the study's images"
+    ):
+        load_mask_region(path, roi_id="L1")
