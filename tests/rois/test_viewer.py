@@ -89,3 +89,31 @@ def test_missing_series_image_frame_and_pixel_are_named(neuro):
     rows = stack.size[1]
     with pytest.raises(InputError, match=rf"row {rows}, column 0 is outside image 1 of series {n}"):
         viewer_point_mm(neuro.index, ViewerPosition(n, 1, rows, 0))
+
+
+def test_a_frame_of_a_multi_frame_file(tmp_path_factory):
+    """Enhanced MR: one file per series; `frame` names the image (PS3.3 C.7.6.16 per-frame
+    plane position); SimpleITK places the same pixel centre."""
+    from sigreport.ingest import index_study
+    from sigreport.synth import generate_study
+
+    study = generate_study(
+        "orbit", tmp_path_factory.mktemp("enh") / "case", enhanced=True, motion=False
+    )
+    index = index_study(study.study_dir)
+    stack = next(s for s in index.stacks if s.role is Role.STIR)  # coronal
+    image = load_stack(stack)
+    k = len(stack.instances) // 2
+    inst = stack.instances[k]
+    assert inst.frame is not None
+    point, _ = viewer_point_mm(
+        index, ViewerPosition(stack.series_number, inst.instance_number, 10, 20, frame=inst.frame)
+    )
+    want = image.TransformContinuousIndexToPhysicalPoint((20.0, 10.0, float(k)))
+    np.testing.assert_allclose(point, want, atol=1e-3)
+    with pytest.raises(InputError, match="is a multi-frame file; give frame = n"):
+        find_image(index, ViewerPosition(stack.series_number, inst.instance_number, 0, 0))
+    with pytest.raises(InputError, match="has no frame 999"):
+        find_image(
+            index, ViewerPosition(stack.series_number, inst.instance_number, 0, 0, frame=999)
+        )
