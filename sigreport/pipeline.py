@@ -336,7 +336,15 @@ def run_report(
         regions,
         viewer_keys=viewer_keys,
         alignments=_alignments_by_key(
-            viewer_keys, index, measured, alignments, images[anchor_role], box, do_register, site
+            viewer_keys,
+            index,
+            measured,
+            alignments,
+            images[anchor_role],
+            anchor.frame_of_reference_uid,
+            box,
+            do_register,
+            site,
         ),
         anchor=anchor,
         anchor_image=images[anchor_role],
@@ -427,6 +435,7 @@ def _alignments_by_key(
     measured: Mapping[Role, Stack],
     alignments: Mapping[Role, Alignment],
     anchor_image: sitk.Image,
+    anchor_frame_uid: str | None,
     box: Any,
     do_register: bool,
     site: Path | None,
@@ -437,17 +446,9 @@ def _alignments_by_key(
     from sigreport.ingest import load_stack
 
     by_key = {stack.key: alignments[role] for role, stack in measured.items()}
-    anchor_frame = next(
-        (
-            s.frame_of_reference_uid
-            for r, s in measured.items()
-            if alignments[r].method == "identity"
-        ),
-        None,
-    )
     for key in sorted(set(viewer_keys.values()) - set(by_key)):
         stack = next(s for s in index.stacks if s.key == key)
-        other_frame = stack.frame_of_reference_uid != anchor_frame
+        other_frame = stack.frame_of_reference_uid != anchor_frame_uid
         by_key[key] = (
             register_rigid(anchor_image, load_stack(stack), box_mm=box, site_lexicon=site)
             if do_register or other_frame

@@ -117,3 +117,27 @@ def test_a_frame_of_a_multi_frame_file(tmp_path_factory):
         find_image(
             index, ViewerPosition(stack.series_number, inst.instance_number, 0, 0, frame=999)
         )
+
+
+def test_an_unmeasured_series_named_by_at_gets_an_alignment(neuro):
+    """The localizer (series 1, never measured) in the anchor's frame of reference, with
+    registration off: the scanner's frame of reference is trusted, as for measured series."""
+    from sigreport.pipeline import _alignments_by_key
+
+    anchor = neuro.stack(Role.T1POSTFS)
+    localizer = next(s for s in neuro.index.stacks if s.series_number == 1)
+    assert localizer.role is Role.UNKNOWN
+    measured = {Role.T1POSTFS: anchor}
+    by_key = _alignments_by_key(
+        {"L1": localizer.key},
+        neuro.index,
+        measured,
+        {Role.T1POSTFS: Alignment("identity")},
+        None,
+        anchor.frame_of_reference_uid,
+        None,
+        False,
+        None,
+    )
+    assert by_key[localizer.key].method == "frame-of-reference"
+    assert by_key[anchor.key].method == "identity"
