@@ -146,3 +146,13 @@ def test_noise_and_a_touching_brighter_neighbour_stay_out(noise):
 def test_a_seed_outside_the_image_is_an_input_error(neuro_anchor):
     with pytest.raises(GrowError, match="L1: seed at .* is outside the anchor series"):
         grow_from_seed(neuro_anchor, (500.0, 0.0, 0.0), roi_id="L1")
+
+
+def test_a_click_off_the_centre_grows_the_same_lesion(neuro_anchor):
+    """A reader clicks anywhere inside the lesion: 40 % of the radius off its centre, or 2 mm
+    along the rim of the layered mass."""
+    direction = np.array([-1.0, 1.0, -1.0]) / np.sqrt(3.0)
+    for name, seed, centre, radius in _outlines("neuro"):
+        layered = not np.allclose(seed, centre)
+        step = np.array([0.0, 2.0, 0.0]) if layered else 0.4 * radius * direction
+        _check(neuro_anchor, name, np.asarray(seed) + step, centre, radius)
