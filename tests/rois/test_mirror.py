@@ -16,6 +16,7 @@ from sigreport.ingest import load_stack
 from sigreport.model import RoiKind, RoiShape, RoiSpec, Role
 from sigreport.rois.mirror import MidSagittalPlane, estimate_midsagittal_plane, mirror_reference
 from sigreport.rois.regions import SphereRegion
+from sigreport.synth.study import Motion
 
 ANGLE_TOL_DEG = 2.0
 DISTANCE_TOL_MM = 2.0
@@ -120,3 +121,17 @@ def test_a_heterogeneous_mirror_is_rejected(anchor):
         spec, region, PLANE, anchor, {"L9": region}, reference_id="L9-auto", max_cv=0.2
     )
     assert result.spec is None and "not homogeneous" in (result.rejected_because or "")
+
+
+@pytest.mark.parametrize("role", [Role.T1FS, Role.T2])
+def test_the_plane_of_a_series_the_synthetic_head_moved_in(neuro, role):
+    """The synthetic study moves the head between series (truth.json: anchor point p appears
+    at R (p - c) + c + t); the 3D sagittal T1FS and the oblique 2D T2 (5 mm slices) each show
+    the moved head's plane."""
+    m = neuro.truth["motion"][role.value]
+    motion = Motion(
+        tuple(m["translation_mm"]), m["rotation_deg"], tuple(m["axis"]), tuple(m["center_mm"])
+    )
+    assert motion.rotation_deg > 1.0
+    plane = estimate_midsagittal_plane(load_stack(neuro.stack(role)))
+    _check(plane, motion.transform())
