@@ -197,7 +197,7 @@ def place_roi_forms(
         taken = {s.id for s in rois}
         problems = []
         for lesion in autos:
-            new_id = _free_id(f"{lesion.id}-auto", taken)
+            new_id = _free_id(f"{lesion.id}-mirror", taken)
             result = mirror_reference(
                 lesion,
                 lesion_regions[lesion.id],

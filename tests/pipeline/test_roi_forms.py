@@ -226,7 +226,7 @@ def test_the_grown_lesion_is_written_as_nifti_and_dicom_seg(run):
 def test_a_homogeneous_mirror_becomes_the_reference(run):
     findings = run[0].findings
     lesion = _lesion(findings, "L5auto")
-    assert lesion["reference"] == "L5auto-auto"
+    assert lesion["reference"] == "L5auto-mirror"
     notes = [
         q
         for q in findings["qc"]

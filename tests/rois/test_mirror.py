@@ -91,7 +91,7 @@ def test_a_homogeneous_mirror_is_the_reference(anchor):
     """L5 (solid lesion, right temporal) mirrors into left temporal white matter."""
     spec, region = _lesion("L5", (-20.0, 2.0, -20.0), 5.0, "right temporal white matter")
     result = mirror_reference(
-        spec, region, PLANE, anchor, {"L5": region}, reference_id="L5-auto", max_cv=0.2
+        spec, region, PLANE, anchor, {"L5": region}, reference_id="L5-mirror", max_cv=0.2
     )
     assert result.spec is not None and result.region is not None
     assert result.spec.kind is RoiKind.REFERENCE
@@ -107,7 +107,7 @@ def test_a_mirror_onto_another_lesion_is_rejected(anchor):
     l3, r3 = _lesion("L3", (-26.0, 26.0, 2.0), 4.5, "right parietal")
     l4, r4 = _lesion("L4", (27.0, 28.0, 2.0), 4.5, "left parietal")
     result = mirror_reference(
-        l3, r3, PLANE, anchor, {"L3": r3, "L4": r4}, reference_id="L3-auto", max_cv=0.5
+        l3, r3, PLANE, anchor, {"L3": r3, "L4": r4}, reference_id="L3-mirror", max_cv=0.5
     )
     assert result.spec is None
     assert result.notes[0].code == "auto-reference-rejected"
@@ -118,7 +118,7 @@ def test_a_heterogeneous_mirror_is_rejected(anchor):
     """At the edge of the head: scalp, skull and brain in one ROI."""
     spec, region = _lesion("L9", (-62.0, 0.0, 0.0), 6.0, "right temporal scalp")
     result = mirror_reference(
-        spec, region, PLANE, anchor, {"L9": region}, reference_id="L9-auto", max_cv=0.2
+        spec, region, PLANE, anchor, {"L9": region}, reference_id="L9-mirror", max_cv=0.2
     )
     assert result.spec is None and "not homogeneous" in (result.rejected_because or "")
 
