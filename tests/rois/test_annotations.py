@@ -241,3 +241,24 @@ def test_an_outline_file_without_the_study_is_an_input_error(anchor, tmp_path):
         InputError, match="presentation state or SR outline needs the study's images"
     ):
         load_mask_region(path, roi_id="L1")
+
+
+def test_a_2d_outline_is_a_slab_of_its_images_slice_thickness(neuro, anchor, tmp_path):
+    """A circle on a 2D axial T1 image (thick slices) sampled on the 1 mm axial anchor: the
+    voxel centres within half the T1's SliceThickness of its plane, half-open."""
+    t1 = neuro.stack(Role.T1)
+    k = len(t1.instances) // 2
+    thickness = float(pydicom.dcmread(t1.instances[k].path, stop_before_pixels=True).SliceThickness)
+    assert thickness > 2.0
+    path = write_gsps(
+        tmp_path / "pr.dcm",
+        [Graphic("CIRCLE", np.array([[60.3, 70.6], [66.5, 70.6]]), _datasets(t1, [k]))],
+    )
+    region, _ = load_annotation_region(path, neuro.index, roi_id="L1")
+    _, image = anchor
+    got = _mask(region, image)
+    z0 = float(t1.instances[k].position_mm[2])
+    zs = np.array([image.TransformIndexToPhysicalPoint((0, 0, s))[2] for s in range(got.shape[0])])
+    want = (zs - z0 >= -thickness / 2) & (zs - z0 < thickness / 2)
+    assert np.array_equal(got.any(axis=(1, 2)), want)
+    assert want.sum() == round(thickness)
