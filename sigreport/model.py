@@ -315,6 +315,23 @@ class RoiShape(StrEnum):
     ELLIPSOID = "ellipsoid"
     BOX = "box"
     MASK = "mask"
+    SEED = "seed"  # one point; the lesion is grown from it on the anchor (docs/rois.md)
+
+
+@dataclass(frozen=True)
+class ViewerPosition:
+    """Where a reader pointed in a viewer (case file ``at``, docs/rois.md).
+
+    ``series`` is the SeriesNumber, ``image`` the InstanceNumber, ``row`` / ``column`` the
+    0-based pixel row and column of that image (fractions allowed), ``frame`` the 1-based frame
+    of a multi-frame file (None for single-frame files).
+    """
+
+    series: int
+    image: int
+    row: float
+    column: float
+    frame: int | None = None
 
 
 @dataclass(frozen=True)
@@ -334,6 +351,13 @@ class RoiSpec:
     segment: str | int | None = None
     label: int | None = None  # label value in a label image (default: any non-zero)
     reference: str | None = None  # lesions: the reference ROI id (resolved to the first one)
+    # or AUTO_REFERENCE: a mirror reference across the mid-sagittal plane (docs/rois.md)
+    at: ViewerPosition | None = None  # instead of center_mm: a viewer position
+    max_radius_mm: float | None = None  # seed: how far the grown region may reach
+
+
+# A lesion's ``reference = "auto"``.
+AUTO_REFERENCE = "auto"
 
 
 @dataclass(frozen=True)
@@ -508,6 +532,8 @@ class ReportPlan:
     regions: tuple[Region, ...]
     qc: tuple[QcNote, ...] = ()
     anchor_note: QcNote | None = None
+    viewer_keys: dict[str, str] = field(default_factory=dict)  # ROI id -> stack of its `at`
+    roi_settings: Any = None  # lexicon/rois.toml (sigreport.rois.settings.RoiSettings)
 
     @property
     def anchor(self) -> Stack:
@@ -551,6 +577,7 @@ class Analysis:
     images: dict[Role, sitk.Image]
     aligned: AlignedStudy
     measurement: StudyMeasurement
+    files: dict[str, bytes] = field(default_factory=dict)  # OUTDIR-relative, e.g. rois/<id>.nii.gz
 
     @property
     def stacks(self) -> dict[Role, Stack]:

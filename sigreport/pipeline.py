@@ -63,14 +63,16 @@ from sigreport.report import (
 from sigreport.report.outdir import check_outdir, report_inputs
 from sigreport.rois import (
     RoiSample,
-    build_region,
     load_case,
     max_diameter_mm,
     sample_region,
     union_bounds,
     volume_ml,
 )
+from sigreport.rois.forms import PlacedRois, place_roi_forms, provisional_regions
+from sigreport.rois.settings import load_roi_settings
 from sigreport.rois.space import Region
+from sigreport.rois.viewer import resolve_viewer_positions
 
 __all__ = [
     "DOUBTFUL_ROLE_CONFIDENCE",
@@ -86,6 +88,7 @@ __all__ = [
     "choose_measured",
     "load_series",
     "measure_study",
+    "place_rois",
     "plan_report",
     "resolve_study_dir",
     "run_report",
@@ -316,7 +319,12 @@ def plan_report(
         raise InputError(
             f"no series under {study_dir} has a role that can be measured (all UNKNOWN)"
         )
-    regions = tuple(build_region(spec) for spec in case.rois)
+    # ROI forms (docs/rois.md): `at` read on its own series; a seed stands in as its sphere.
+    roi_settings = load_roi_settings(lexicon.site)
+    case, viewer_keys = resolve_viewer_positions(case, index)
+    regions_list, roi_notes = provisional_regions(case, roi_settings, index)
+    qc.extend(roi_notes)
+    regions = tuple(regions_list)
     anchor_role, anchor_reason = choose_anchor(case, measured, regions)
     do_register = (
         register if register is not None else (case.register if case.register is not None else True)
@@ -342,6 +350,8 @@ def plan_report(
         regions=regions,
         qc=tuple(qc),
         anchor_note=anchor_note,
+        viewer_keys=dict(viewer_keys),
+        roi_settings=roi_settings,
     )
 
 
@@ -400,6 +410,34 @@ def align_series(
             for w in alignment.warnings
         )
     return AlignedStudy(alignments=alignments, qc=tuple(qc))
+
+
+def place_rois(
+    plan: ReportPlan,
+    images: Mapping[Role, sitk.Image],
+    aligned: AlignedStudy,
+    *,
+    progress: Progress | None = None,
+) -> tuple[ReportPlan, PlacedRois]:
+    """Finish the ROIs in the anchor's space once the series are aligned (docs/rois.md): viewer
+    positions carried through their series' alignment, seeds grown on the anchor, mirror
+    references placed, laterality checked. Returns the plan with the final case and regions,
+    and what was placed (its qc notes and the grown lesions' files for OUTDIR)."""
+    say(progress, "placing the ROIs")
+    anchor_image = images[plan.anchor_role]
+    rules = plan.lexicon.rules
+    placed = place_roi_forms(
+        plan.case,
+        plan.regions,
+        viewer_keys=plan.viewer_keys,
+        alignments=_alignments_by_key(plan, aligned, anchor_image),
+        anchor=plan.anchor,
+        anchor_image=anchor_image,
+        settings=plan.roi_settings,
+        max_cv=float(rules.thresholds.reference.max_cv),
+        min_voxels=int(rules.min_voxels),
+    )
+    return replace(plan, case=placed.case, regions=tuple(placed.regions)), placed
 
 
 def measure_study(
@@ -524,9 +562,10 @@ def analyze_case(
     )
     images = load_series(plan, progress=progress)
     aligned = align_series(plan, images, progress=progress)
+    plan, placed = place_rois(plan, images, aligned, progress=progress)
     measurement = measure_study(plan, images, aligned, progress=progress)
     result = characterize_study(plan, measurement, progress=progress)
-    qc = [*plan.qc, *aligned.qc, *measurement.qc, *result.qc]
+    qc = [*plan.qc, *aligned.qc, *placed.qc, *measurement.qc, *result.qc]
     if plan.anchor_note is not None:
         qc.append(plan.anchor_note)
     findings = build_findings(
@@ -538,7 +577,7 @@ def analyze_case(
         qc,
         cautions=lexicon.cautions,
     )
-    key_slices = build_key_slices(case, images, measurement.samples, plan.measured)
+    key_slices = build_key_slices(plan.case, images, measurement.samples, plan.measured)
     return Analysis(
         findings=findings,
         key_slices=tuple(key_slices),
@@ -547,6 +586,7 @@ def analyze_case(
         images=dict(images),
         aligned=aligned,
         measurement=measurement,
+        files=dict(placed.files),
     )
 
 
@@ -605,8 +645,31 @@ def run_report(
         lexicon=lexicon,
         phrases=analysis.phrases,
         progress=progress,
+        extra_files=analysis.files,
     )
     return ReportRun(out_dir=out_dir, report_html=html, findings=analysis.findings)
+
+
+def _alignments_by_key(
+    plan: ReportPlan, aligned: AlignedStudy, anchor_image: sitk.Image
+) -> dict[str, Alignment]:
+    """Each stack's alignment to the anchor by stack key; a series named by an ``at`` that is
+    not measured is aligned here like the measured ones."""
+    by_key = {stack.key: aligned.alignments[role] for role, stack in plan.measured.items()}
+    for key in sorted(set(plan.viewer_keys.values()) - set(by_key)):
+        stack = next(s for s in plan.index.stacks if s.key == key)
+        other_frame = stack.frame_of_reference_uid != plan.anchor.frame_of_reference_uid
+        by_key[key] = (
+            register_rigid(
+                anchor_image,
+                load_stack(stack),
+                box_mm=union_bounds(plan.regions),
+                settings=plan.lexicon.alignment,
+            )
+            if plan.register or other_frame
+            else identity_alignment("frame-of-reference")
+        )
+    return by_key
 
 
 def _overlap_notes(

@@ -103,6 +103,7 @@ def write_report(
     lexicon: Lexicon | None = None,
     phrases: Mapping[str, LesionPhrases] | None = None,
     progress: Progress | None = None,
+    extra_files: Mapping[str, bytes] | None = None,
 ) -> Path:
     """Write every OUTDIR file (docs/outputs.md), atomically.
 
@@ -132,6 +133,9 @@ def write_report(
         the words then come from the lexicon (:func:`report.findings.phrases_from_findings`).
     progress:
         Told about each file as it is written.
+    extra_files:
+        More files for OUTDIR, relative path (``/``-separated, no ``..``) -> bytes, e.g. the
+        grown lesions' ``rois/<id>.nii.gz`` and ``rois/<id>-seg.dcm`` (docs/rois.md).
 
     Returns
     -------
@@ -164,6 +168,7 @@ def write_report(
         try:
             try:
                 _build(temp, findings, key_slices, stacks, lexicon, phrases, progress)
+                _write_extra(temp, extra_files or {})
                 write_mark(temp, kind="report")
             except OSError as exc:
                 raise _cannot_write(out_dir, exc) from None
@@ -215,6 +220,16 @@ def _build(
     say(progress, "writing sr.dcm", 5, total)
     write_sr(folder / "sr.dcm", build_sr(findings, key_slices, stacks))
     say(progress, "report written", total, total)
+
+
+def _write_extra(folder: Path, files: Mapping[str, bytes]) -> None:
+    for name, content in files.items():
+        parts = name.split("/")
+        if not name or name.startswith("/") or any(p in ("", ".", "..") for p in parts):
+            raise ValueError(f'Argument "extra_files" has an unsafe path {name!r}.')
+        path = folder.joinpath(*parts)
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_bytes(content)
 
 
 def _install(temp: Path, out_dir: Path, *, force: bool) -> None:

@@ -19,7 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from sigreport.errors import InputError
-from sigreport.model import Case, RoiKind, RoiShape, RoiSpec, Role
+from sigreport.model import AUTO_REFERENCE, Case, RoiKind, RoiShape, RoiSpec, Role, ViewerPosition
 
 __all__ = ["load_case", "ROI_KEYS", "TOP_KEYS"]
 
@@ -40,16 +40,24 @@ ROI_KEYS = frozenset(
         "segment",
         "label",
         "reference",
+        "at",
+        "max_radius_mm",
     }
 )
+AT_KEYS = frozenset({"series", "image", "row", "column", "frame"})
 # The geometry keys each shape needs; any other geometry key on that shape is a mistake.
 _SHAPE_KEYS: dict[RoiShape, frozenset[str]] = {
     RoiShape.SPHERE: frozenset({"center_mm", "radius_mm"}),
     RoiShape.ELLIPSOID: frozenset({"center_mm", "semi_axes_mm"}),
     RoiShape.BOX: frozenset({"center_mm", "size_mm"}),
     RoiShape.MASK: frozenset({"mask"}),
+    RoiShape.SEED: frozenset({"center_mm"}),
 }
-_GEOMETRY_KEYS = frozenset({"center_mm", "radius_mm", "semi_axes_mm", "size_mm", "mask"})
+# Keys a shape may have besides the ones it needs.
+_SHAPE_OPTIONAL: dict[RoiShape, frozenset[str]] = {RoiShape.SEED: frozenset({"max_radius_mm"})}
+_GEOMETRY_KEYS = frozenset(
+    {"center_mm", "radius_mm", "semi_axes_mm", "size_mm", "mask", "max_radius_mm"}
+)
 _MASK_ONLY_KEYS = frozenset({"segment", "label"})
 _MAX_ID_LENGTH = 32
 
@@ -114,6 +122,60 @@ def _positive(value: Any, key: str, where: str, problems: _Problems) -> float | 
     return float(value)
 
 
+def _parse_at(value: Any, where: str, problems: _Problems) -> ViewerPosition | None:
+    """``at = {series, image, row, column[, frame]}`` (docs/rois.md, viewer positions)."""
+    if not isinstance(value, dict):
+        problems.add(
+            where,
+            "at must be a table {series = n, image = n, row = r, column = c} (frame = n for a "
+            f"multi-frame file), got {_show(value)}",
+        )
+        return None
+    ok = True
+    unknown = sorted(set(value) - AT_KEYS)
+    if unknown:
+        problems.add(
+            where,
+            f"at: unknown key(s) {_choices(unknown)}; expected {_choices(sorted(AT_KEYS))}",
+        )
+        ok = False
+    for key in ("series", "image", "row", "column"):
+        if key not in value:
+            problems.add(where, f"at.{key} is missing")
+            ok = False
+    ints: dict[str, int] = {}
+    for key, low in (("series", 0), ("image", 0), ("frame", 1)):
+        if key not in value:
+            continue
+        v = value[key]
+        if isinstance(v, bool) or not isinstance(v, int) or v < low:
+            problems.add(where, f"at.{key} must be an integer >= {low}, got {_show(v)}")
+            ok = False
+        else:
+            ints[key] = v
+    floats: dict[str, float] = {}
+    for key in ("row", "column"):
+        if key not in value:
+            continue
+        v = value[key]
+        if not _is_number(v) or not math.isfinite(v) or v < 0:
+            problems.add(
+                where, f"at.{key} must be a 0-based pixel {key} (a number >= 0), got {_show(v)}"
+            )
+            ok = False
+        else:
+            floats[key] = float(v)
+    if not ok:
+        return None
+    return ViewerPosition(
+        series=ints["series"],
+        image=ints["image"],
+        row=floats["row"],
+        column=floats["column"],
+        frame=ints.get("frame"),
+    )
+
+
 def _optional_text(table: dict[str, Any], key: str, where: str, problems: _Problems) -> str | None:
     value = table.get(key)
     if value is None:
@@ -159,6 +221,11 @@ def _parse_roi(
             f"got {_show(raw_id)}",
         )
         ok = False
+    elif raw_id == AUTO_REFERENCE:
+        problems.add(
+            where, f'id {raw_id!r} is reserved (reference = "auto" asks for a mirror reference)'
+        )
+        ok = False
 
     kind: RoiKind | None = None
     raw_kind = table.get("kind")
@@ -198,12 +265,32 @@ def _parse_roi(
     fields: dict[str, Any] = {}
     if shape is not None:
         needed = _SHAPE_KEYS[shape]
-        for key in sorted(needed - set(table)):
-            problems.add(where, f"{key} is missing (shape {shape.value} needs it)")
+        allowed = needed | _SHAPE_OPTIONAL.get(shape, frozenset())
+        present = set(table)
+        if "center_mm" in needed and "at" in table:
+            # A viewer position stands for the centre (docs/rois.md).
+            if "center_mm" in table:
+                problems.add(where, "give center_mm or at, not both")
+                ok = False
+            present.add("center_mm")
+        elif "at" in table:
+            problems.add(where, f"at does not apply to shape {shape.value}")
             ok = False
-        for key in sorted((_GEOMETRY_KEYS - needed) & set(table)):
+        for key in sorted(needed - present):
+            hint = " or at" if key == "center_mm" else ""
+            problems.add(where, f"{key}{hint} is missing (shape {shape.value} needs it)")
+            ok = False
+        for key in sorted((_GEOMETRY_KEYS - allowed) & set(table)):
             problems.add(where, f"{key} does not apply to shape {shape.value}")
             ok = False
+        if "at" in table and "center_mm" in needed:
+            fields["at"] = _parse_at(table["at"], where, problems)
+            ok = ok and fields["at"] is not None
+        if "max_radius_mm" in table and "max_radius_mm" in allowed:
+            fields["max_radius_mm"] = _positive(
+                table["max_radius_mm"], "max_radius_mm", where, problems
+            )
+            ok = ok and fields["max_radius_mm"] is not None
         if shape is not RoiShape.MASK:
             for key in sorted(_MASK_ONLY_KEYS & set(table)):
                 problems.add(where, f"{key} only applies to shape mask")
@@ -463,16 +550,28 @@ def load_case(path: Path) -> Case:
             kinds.setdefault(table["id"], table.get("kind"))
     references = [roi_id for roi_id, kind in kinds.items() if kind == RoiKind.REFERENCE.value]
     lesions = [roi_id for roi_id, kind in kinds.items() if kind == RoiKind.LESION.value]
+    # Lesions with reference = "auto" need no reference ROI of the case file (docs/rois.md).
+    all_auto = bool(lesions) and all(
+        isinstance(t, dict) and t.get("reference") == AUTO_REFERENCE
+        for t in raw_rois
+        if isinstance(t, dict) and t.get("kind") == RoiKind.LESION.value
+    )
     if raw_rois and not lesions:
         problems.add("", 'no lesion ROI (kind = "lesion"); at least one is needed')
-    if raw_rois and not references:
-        problems.add("", 'no reference ROI (kind = "reference"); at least one is needed')
+    if raw_rois and not references and not all_auto:
+        problems.add(
+            "",
+            'no reference ROI (kind = "reference"); at least one is needed (or reference = '
+            '"auto" on every lesion)',
+        )
 
     for fields in parsed:
         if fields["kind"] is not RoiKind.LESION:
             continue
         where = f"roi[{fields['_index']}] ({fields['id']})"
         ref = fields["reference"]
+        if ref == AUTO_REFERENCE:
+            continue
         if ref is None:
             fields["reference"] = references[0] if references else None
         elif ref not in kinds:

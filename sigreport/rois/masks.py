@@ -247,9 +247,16 @@ def load_mask_region(
             return load_seg(path, roi_id=roi_id, segment=segment if segment is not None else label)
         if modality == "RTSTRUCT":
             return load_rtstruct(path, roi_id=roi_id, roi=segment)
+        if modality in ("PR", "SR"):
+            # Outlines on images: placed with the study's geometry (rois.annotations).
+            raise InputError(
+                f"mask file {path}: a presentation state or SR outline needs the study's "
+                "images (sigreport.rois.annotations.load_annotation_region)"
+            )
         raise InputError(
-            f"mask file {path}: DICOM Modality {modality or '(none)'} is neither SEG nor "
-            "RTSTRUCT; a DICOM mask must be a Segmentation or an RT Structure Set"
+            f"mask file {path}: DICOM Modality {modality or '(none)'} is not SEG, RTSTRUCT, PR "
+            "or SR; a DICOM mask must be a Segmentation, an RT Structure Set, a presentation "
+            "state or a measurement report"
         )
     return load_label_image(path, roi_id=roi_id, label=label)
 

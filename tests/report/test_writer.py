@@ -100,3 +100,17 @@ def test_image_names_never_carry_raw_ids(tmp_path, findings, key_slices, study):
     names = sorted(p.name for p in (out / "images").iterdir())
     assert names == sorted(f"__b_x_{k.role}.png" for k in keys)
     assert sorted(p.name for p in tmp_path.iterdir()) == ["report"]
+
+
+def test_extra_files_go_into_outdir_and_unsafe_paths_are_refused(
+    tmp_path, findings, key_slices, study
+):
+    out = tmp_path / "out"
+    write_report(out, findings, key_slices[:1], study, extra_files={"rois/L1.nii.gz": b"abc"})
+    assert (out / "rois" / "L1.nii.gz").read_bytes() == b"abc"
+    for bad in ("../escape.bin", "/abs.bin", "rois/../../x", ""):
+        target = tmp_path / f"out-{abs(hash(bad))}"
+        with pytest.raises(ValueError, match="unsafe path"):
+            write_report(target, findings, key_slices[:1], study, extra_files={bad: b"x"})
+        assert not target.exists()
+    assert not (tmp_path / "escape.bin").exists()

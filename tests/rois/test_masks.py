@@ -219,7 +219,9 @@ def test_dicom_that_is_not_a_mask_is_rejected(tmp_path):
     ds.SOPInstanceUID = generate_uid()
     ds.Modality = "MR"
     path = save(ds, tmp_path / "mr.dcm", MR_IMAGE_STORAGE)
-    with pytest.raises(InputError, match=r"mr\.dcm: DICOM Modality MR is neither SEG nor RTSTRUCT"):
+    with pytest.raises(
+        InputError, match=r"mr\.dcm: DICOM Modality MR is not SEG, RTSTRUCT, PR or SR"
+    ):
         build_region(rt_spec(path))
 
 
