@@ -31,6 +31,7 @@ from sigreport.model import (
     QcLevel,
     QcNote,
     RoiKind,
+    RoiShape,
     Role,
     SeriesMeasurement,
     Stack,
@@ -207,6 +208,8 @@ def run_report(
     force: bool = False,
     site_lexicon: Path | None = None,
     progress: Progress | None = None,
+    prior_study: Path | None = None,
+    prior_case: Path | None = None,
 ) -> ReportRun:
     """Place the case's ROIs on every series of the study, measure, characterize and write the
     report folder.
@@ -224,24 +227,18 @@ def run_report(
         ``[options] register``, whose default is True.
     site_lexicon
         A site's lexicon folder; wins over the case file's ``lexicon``.
+    prior_study, prior_case
+        A prior study of the same patient and its case file: each lesion gets ``change``
+        against the prior's lesion of the same id (docs/measurements.md, Interval change). The
+        prior is measured with the same stages, options and lexicon, and nothing of it is
+        written. ``prior_study`` defaults to the prior case file's ``study``.
     """
-    from sigreport.align import identity_alignment, register_rigid
-    from sigreport.ingest import index_study, load_stack
-    from sigreport.measure import characterize, load_rules, measure_roi, noise_sigma
     from sigreport.report import write_report
-    from sigreport.rois import (
-        build_region,
-        load_case,
-        max_diameter_mm,
-        sample_region,
-        union_bounds,
-        volume_ml,
-    )
+    from sigreport.rois import load_case
 
     case = load_case(Path(case_path))
     site = site_lexicon if site_lexicon is not None else case.lexicon
     lexicon.site_dir(site)  # a missing site folder is an input error before any work
-    rules = load_rules(site)
     study_dir = study_dir if study_dir is not None else case.study
     if study_dir is None:
         raise InputError(
@@ -254,7 +251,111 @@ def run_report(
         raise InputError(
             f"{out_dir} is inside the study folder {study_dir}; the input is never written to"
         )
+    if prior_study is not None and prior_case is None:
+        raise InputError(
+            "--prior needs --prior-case: the prior study's ROIs come from its case file"
+        )
 
+    findings, key_slices, measured = _compute(case, Path(study_dir), register, site, progress)
+    if prior_case is not None:
+        findings = _with_prior(findings, case, prior_case, prior_study, register, site, progress)
+    _say(progress, f"writing {out_dir}")
+    html = write_report(
+        out_dir,
+        findings,
+        key_slices,
+        {r.value: s for r, s in measured.items()},
+        site_lexicon=site,
+        force=force,
+    )
+    return ReportRun(out_dir=out_dir, report_html=html, findings=findings)
+
+
+def build_findings_only(
+    case_path: Path,
+    *,
+    study_dir: Path | None = None,
+    register: bool | None = None,
+    site_lexicon: Path | None = None,
+    progress: Progress | None = None,
+) -> dict[str, Any]:
+    """The findings object ``run_report`` would write for this case, without writing anything.
+
+    Parameters are those of :func:`run_report`.
+    """
+    from sigreport.rois import load_case
+
+    case = load_case(Path(case_path))
+    site = site_lexicon if site_lexicon is not None else case.lexicon
+    lexicon.site_dir(site)
+    study_dir = study_dir if study_dir is not None else case.study
+    if study_dir is None:
+        raise InputError(
+            f'{case.path.name}: no study folder: give the study or set study = "..." in the case file'
+        )
+    return _compute(case, Path(study_dir), register, site, progress)[0]
+
+
+def _with_prior(
+    findings: dict[str, Any],
+    case: Case,
+    prior_case: Path,
+    prior_study: Path | None,
+    register: bool | None,
+    site: Path | None,
+    progress: Progress | None,
+) -> dict[str, Any]:
+    """``findings`` with the interval change against the prior (same options and lexicon)."""
+    from sigreport.measure.change import interval_change, with_interval_change
+    from sigreport.rois import load_case
+
+    _say(progress, f"measuring the prior study ({prior_case})")
+    try:
+        prior = load_case(Path(prior_case))
+        prior_findings = build_findings_only(
+            prior.path,
+            study_dir=prior_study,
+            register=register,
+            site_lexicon=site,
+            progress=progress,
+        )
+    except InputError as exc:
+        raise InputError(f"prior study: {exc}") from None
+    change = interval_change(
+        findings,
+        prior_findings,
+        current_outlined=_outlined(case),
+        prior_outlined=_outlined(prior),
+    )
+    return with_interval_change(findings, change)
+
+
+def _outlined(case: Case) -> set[str]:
+    """Ids of the case's ROIs drawn as outlines (mask, SEG, RTSTRUCT), not typed shapes."""
+    return {spec.id for spec in case.rois if spec.shape is RoiShape.MASK}
+
+
+def _compute(
+    case: Case,
+    study_dir: Path,
+    register: bool | None,
+    site: Path | None,
+    progress: Progress | None,
+) -> tuple[dict[str, Any], list[KeySlice], dict[Role, Stack]]:
+    """Index, choose, load, align, measure and characterize: the findings, key slices and
+    measured stacks of one study (nothing is written)."""
+    from sigreport.align import identity_alignment, register_rigid
+    from sigreport.ingest import index_study, load_stack
+    from sigreport.measure import characterize, load_rules, measure_roi, noise_sigma
+    from sigreport.rois import (
+        build_region,
+        max_diameter_mm,
+        sample_region,
+        union_bounds,
+        volume_ml,
+    )
+
+    rules = load_rules(site)
     _say(progress, f"indexing {study_dir}")
     index = index_study(Path(study_dir), site_lexicon=site)
     if not index.stacks:
@@ -386,16 +487,7 @@ def run_report(
 
     findings = build_findings(index, measured, alignments, anchor_role, result, qc, site=site)
     key_slices = build_key_slices(case, images, samples, measured)
-    _say(progress, f"writing {out_dir}")
-    html = write_report(
-        out_dir,
-        findings,
-        key_slices,
-        {r.value: s for r, s in measured.items()},
-        site_lexicon=site,
-        force=force,
-    )
-    return ReportRun(out_dir=out_dir, report_html=html, findings=findings)
+    return findings, key_slices, measured
 
 
 def _inside(path: Path, folder: Path) -> bool:
@@ -479,6 +571,10 @@ def build_findings(
             "study_instance_uid": study.study_instance_uid,
             "study_date": study.study_date,
             "accession_number": study.accession_number,
+            "patient_name": study.patient_name,
+            "patient_id": study.patient_id,
+            "birth_date": study.patient_birth_date,
+            "sex": study.patient_sex,
         },
         "series": series,
         "rois": [dict(r) for r in result.rois],

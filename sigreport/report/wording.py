@@ -42,6 +42,11 @@ _SECTIONS: dict[str, set[str]] = {
         "behaviour_no_considerations", "list_separator", "list_last_separator",
         "considerations_separator",
     },
+    "change": {
+        "since", "since_nothing", "new", "interval", "interval_unknown", "date_unknown",
+        "larger", "smaller", "same_volume", "newly_enhancing", "no_longer_enhancing",
+        "enhancement", "ratio", "items_separator", "not_seen", "not_seen_lesion",
+    },
     "qc": {"warning", "error", "info", "none"},
     "plot": {"iso_low", "iso_high"},
 }  # fmt: skip
@@ -56,6 +61,7 @@ class Wording:
     patterns: dict[str, str]
     sentences: dict[str, str]
     qc: dict[str, str]
+    change: dict[str, str]
     iso_band: tuple[float, float]
     source: Path
 
@@ -93,7 +99,7 @@ def load_wording(site: Path | str | None = None) -> Wording:
         if missing:
             raise InputError(f"{path} [{section}]: missing key(s) {', '.join(missing)}")
         parsed[section] = values
-    for section in ("titles", "roles", "patterns", "sentences", "qc"):
+    for section in ("titles", "roles", "patterns", "sentences", "qc", "change"):
         for key, value in parsed[section].items():
             if not isinstance(value, str):
                 raise InputError(f"{path} [{section}] {key}: expected a string, got {value!r}")
@@ -108,6 +114,7 @@ def load_wording(site: Path | str | None = None) -> Wording:
         patterns=dict(parsed["patterns"]),
         sentences=dict(parsed["sentences"]),
         qc=dict(parsed["qc"]),
+        change=dict(parsed["change"]),
         iso_band=(float(low), float(high)),
         source=path,
     )
