@@ -14,6 +14,7 @@ import os
 import re
 import shutil
 import traceback
+import uuid
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -229,7 +230,7 @@ def run_batch(
     ------
     InputError
         A case folder exists without ``force``, OUTDIR is inside a study, the scheduler cannot
-        be reached, or ``workers`` < 1.
+        be reached, ``workers`` < 1, or ``workers`` is given with ``scheduler``.
     """
     from distributed import as_completed
 
@@ -237,28 +238,33 @@ def run_batch(
     check_out_dir(worklist, out_dir, force=force)
     if workers is not None and workers < 1:
         raise InputError(f"--workers must be at least 1, got {workers}")
+    if workers is not None and scheduler is not None:
+        raise InputError(
+            "--workers sets the size of the local cluster; with --scheduler the scheduler's "
+            "own workers run the cases"
+        )
     out_dir.mkdir(parents=True, exist_ok=True)
     site = str(site_lexicon) if site_lexicon is not None else None
     results: dict[str, dict[str, Any]] = {}
     interrupted = False
     client, cluster = _connect(scheduler, workers)
+    futures: dict[Any, CaseEntry] = {}
     try:
-        if on_start is not None:
-            on_start(len(client.scheduler_info().get("workers", {})))
-        futures = {
-            client.submit(
-                run_case,
-                entry,
-                str(out_dir.resolve()),
-                register=register,
-                force=force,
-                site_lexicon=site,
-                key=f"sigreport-case-{entry.id}-{os.getpid()}-{id(worklist)}",
-                pure=False,
-            ): entry
-            for entry in worklist.cases
-        }
         try:
+            if on_start is not None:
+                on_start(len(client.scheduler_info().get("workers", {})))
+            for entry in worklist.cases:
+                future = client.submit(
+                    run_case,
+                    entry,
+                    str(out_dir.resolve()),
+                    register=register,
+                    force=force,
+                    site_lexicon=site,
+                    key=f"sigreport-case-{entry.id}-{uuid.uuid4().hex}",
+                    pure=False,
+                )
+                futures[future] = entry
             for future in as_completed(futures):
                 entry = futures[future]
                 try:

@@ -152,6 +152,7 @@ def test_the_board_sheet_links_each_finished_case(batch_run):
     assert "radius_mm" in html  # the broken case's reason
 
 
+@pytest.mark.browser
 def test_the_board_sheet_renders_in_headless_chromium(batch_run, tmp_path):
     binary = shutil.which("chromium") or shutil.which("chromium-browser")
     if binary is None:
@@ -188,3 +189,43 @@ def test_ctrl_c_cancels_pending_cases_and_leaves_no_partial_folder(board, tmp_pa
         assert not path.name.startswith("."), path  # no half-written case folder
         if path.is_dir():  # any case folder there is complete
             assert (path / "findings.json").is_file() and (path / "sr.dcm").is_file()
+
+
+def test_an_existing_scheduler_runs_the_cases(board, tmp_path):
+    from distributed import LocalCluster
+
+    # A scheduler the command did not start (here in this process; on a cluster, another
+    # machine): the command only connects to it.
+    full = load_worklist(board.worklist)
+    worklist = tmp_path / "two.toml"
+    worklist.write_text(
+        "".join(
+            f'[[case]]\nid = "{c.id}"\nstudy = {json.dumps(str(c.study))}\n'
+            f"case = {json.dumps(str(c.case))}\n"
+            for c in full.cases
+            if c.id in ("cyst", "broken")
+        )
+    )
+    with LocalCluster(
+        n_workers=1, threads_per_worker=1, processes=False, dashboard_address=None
+    ) as cluster:
+        result = CliRunner().invoke(
+            app,
+            ["batch", str(worklist), "--out", str(tmp_path / "out"),
+             "--scheduler", cluster.scheduler_address],
+        )  # fmt: skip
+    assert result.exit_code == 3, result.output
+    rows = _summary(tmp_path / "out")
+    assert rows["cyst"]["status"] == "done" and rows["broken"]["status"] == "failed"
+    assert (tmp_path / "out" / "cyst" / "findings.json").is_file()
+
+
+def test_an_unreachable_scheduler_is_an_input_error(board, tmp_path):
+    # Port 9 (discard) is closed on the test machine: nothing listens there.
+    result = CliRunner().invoke(
+        app,
+        ["batch", str(board.worklist), "--out", str(tmp_path / "out"),
+         "--scheduler", "tcp://127.0.0.1:9"],
+    )  # fmt: skip
+    assert result.exit_code == 2, result.output
+    assert "--scheduler tcp://127.0.0.1:9: cannot connect" in " ".join(result.output.split())
