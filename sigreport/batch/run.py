@@ -10,6 +10,7 @@ OUTDIR at the same paths.
 
 from __future__ import annotations
 
+import logging
 import os
 import re
 import shutil
@@ -317,6 +318,9 @@ def _connect(scheduler: str | None, workers: int | None) -> tuple[Any, Any]:
         processes=True,
         host="127.0.0.1",
         dashboard_address=None,
+        # The cluster's own notices (workers starting, tasks cancelled on Ctrl-C) are not the
+        # user's business; errors still show.
+        silence_logs=logging.ERROR,
     )
     try:
         return Client(cluster), cluster
