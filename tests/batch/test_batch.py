@@ -13,6 +13,7 @@ from dataclasses import replace
 from html.parser import HTMLParser
 from pathlib import Path
 
+import jsonschema
 import pytest
 from typer.testing import CliRunner
 
@@ -117,6 +118,8 @@ def test_the_known_interval_change_is_recovered(batch_run, board):
     assert true_pp > 0 and change["enhancement_change_pp"] > 0
     assert change["enhancing_before"] is False and lesion["enhancement"]["enhancing"] is True
     assert set(change["ratio_change"]) == {"T1", "T2", "T1POST"}
+    schema = json.loads((Path(__file__).parents[2] / "docs" / "findings.schema.json").read_text())
+    jsonschema.validate(findings, schema)
     assert findings["prior"]["not_seen"] == []
     text = " ".join((out / "growth" / "report.txt").read_text(encoding="utf-8").split())
     assert "Since the prior study of 2026-06-03 (183 days): larger by" in text
@@ -229,3 +232,24 @@ def test_an_unreachable_scheduler_is_an_input_error(board, tmp_path):
     )  # fmt: skip
     assert result.exit_code == 2, result.output
     assert "--scheduler tcp://127.0.0.1:9: cannot connect" in " ".join(result.output.split())
+
+
+def test_report_prior_options_and_errors(board, tmp_path):
+    cyst = board.studies["cyst"]
+    result = CliRunner().invoke(
+        app,
+        ["report", str(cyst.study_dir), "--case", str(cyst.case_path),
+         "--out", str(tmp_path / "a"), "--prior", str(cyst.study_dir)],
+    )  # fmt: skip
+    assert result.exit_code == 2
+    assert "--prior needs --prior-case" in result.output
+    # A problem with the prior names it as such, and nothing is written.
+    broken = board.root / "broken.toml"
+    with pytest.raises(InputError, match=r"^prior study: broken\.toml: roi\[1\] \(L1\): radius_mm"):
+        run_report(
+            cyst.case_path,
+            tmp_path / "b",
+            prior_study=cyst.study_dir,
+            prior_case=broken,
+        )
+    assert not (tmp_path / "b").exists()
