@@ -251,6 +251,11 @@ def run_report(
         raise InputError(
             f"{out_dir} is inside the study folder {study_dir}; the input is never written to"
         )
+    for folder in (Path(study_dir), prior_study):
+        if folder is not None and _inside(Path(folder), out_dir):
+            raise InputError(
+                f"the study folder {folder} is inside {out_dir}; the input is never written to"
+            )
     if prior_study is not None and prior_case is None:
         raise InputError(
             "--prior needs --prior-case: the prior study's ROIs come from its case file"

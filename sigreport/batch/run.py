@@ -164,9 +164,15 @@ def run_case(
 
 
 def check_out_dir(worklist: Worklist, out_dir: Path, *, force: bool = False) -> None:
-    """Refuse, before any work, case folders that exist (without ``force``) and an OUTDIR
-    inside a study folder (the input is never written to)."""
+    """Refuse, before any work, case folders that exist (without ``force``) or hold any input
+    of the worklist, and an OUTDIR inside a study folder (the input is never written to)."""
     problems = []
+    inputs = [
+        path
+        for entry in worklist.cases
+        for path in (entry.study, entry.case, entry.prior_study, entry.prior_case)
+        if path is not None
+    ]
     for entry in worklist.cases:
         target = out_dir / entry.id
         if target.exists() and not force:
@@ -174,6 +180,10 @@ def check_out_dir(worklist: Worklist, out_dir: Path, *, force: bool = False) -> 
         for folder in (entry.study, entry.prior_study):
             if folder is not None and _inside(out_dir, folder):
                 problems.append(f"{out_dir} is inside the study folder {folder} of {entry.id}")
+        # A case folder is replaced whole (--force): it must hold no input of any case.
+        held = [p for p in inputs if _inside(p, target)]
+        if held:
+            problems.append(f"{target} holds input of the worklist ({held[0]})")
     if problems:
         hint = "; use --force to replace case folders" if not force else ""
         raise InputError(f"{out_dir}: " + "; ".join(problems) + hint)

@@ -101,3 +101,13 @@ def test_the_command_refuses_existing_case_folders(folder):
     result = CliRunner().invoke(app, ["batch", str(path), "--out", str(folder / "out")])
     assert result.exit_code == 2, result.output
     assert "exists" in result.output and "--force" in result.output
+
+
+def test_a_case_folder_holding_input_is_refused_even_with_force(folder):
+    # OUTDIR/s1 would be the case folder of "s1", and it holds that case's study: replacing it
+    # (--force) would delete the input.
+    path = _write(folder, '[[case]]\nid = "s1"\nstudy = "s1"\ncase = "c1.toml"\n')
+    result = CliRunner().invoke(app, ["batch", str(path), "--out", str(folder), "--force"])
+    assert result.exit_code == 2, result.output
+    assert "holds input of the worklist" in " ".join(result.output.split())
+    assert (folder / "s1").is_dir()
