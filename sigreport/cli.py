@@ -224,6 +224,22 @@ def report(
     push: Annotated[
         bool, typer.Option("--push", help="With --dicomweb: store sr.dcm in the archive (STOW-RS).")
     ] = False,
+    prior: Annotated[
+        Path | None,
+        typer.Option(
+            "--prior",
+            help="A prior study of the same patient: each lesion gets its interval change.",
+            show_default=False,
+        ),
+    ] = None,
+    prior_case: Annotated[
+        Path | None,
+        typer.Option(
+            "--prior-case",
+            help="The prior study's case file (lesions matched by ROI id).",
+            show_default=False,
+        ),
+    ] = None,
 ) -> None:
     """Place the ROIs, carry them to every series, measure, characterize, write OUTDIR."""
     from sigreport.pipeline import run_report
@@ -232,6 +248,8 @@ def report(
     if push and dicomweb is None:
         raise _fail("--push needs --dicomweb URL --study-uid UID")
     if dicomweb is not None:
+        if prior is not None or prior_case is not None:
+            raise _fail("--prior with --dicomweb is not supported: give the prior as a folder")
         _report_archive(
             case, out, dicomweb, str(study_uid), register, force, site_lexicon, push=push
         )
@@ -246,6 +264,8 @@ def report(
                 force=force,
                 site_lexicon=site_lexicon,
                 progress=progress,
+                prior_study=prior,
+                prior_case=prior_case,
             )
     except InputError as exc:
         raise _fail(str(exc)) from None
@@ -399,7 +419,134 @@ def _report_archive(
     typer.echo(terminal_text(str(done.run.report_html)))
 
 
+@app.command()
+def batch(
+    worklist: Annotated[
+        Path, typer.Argument(help="The worklist (TOML): one [[case]] with id, study, case.")
+    ],
+    out: Annotated[
+        Path,
+        typer.Option(
+            "--out", help="The folder receiving every case's report, index.html and summary.csv."
+        ),
+    ] = ...,  # type: ignore[assignment]
+    scheduler: Annotated[
+        str | None,
+        typer.Option(
+            "--scheduler",
+            help="Address of a running Dask scheduler (tcp://host:8786); default a local cluster.",
+            show_default=False,
+        ),
+    ] = None,
+    workers: Annotated[
+        int | None,
+        typer.Option(
+            "--workers", help="Local cluster: worker processes (default: the number of cores)."
+        ),
+    ] = None,
+    register: Annotated[
+        bool | None,
+        typer.Option(
+            "--register/--no-register",
+            help="As for report, for every case.",
+            show_default=False,
+        ),
+    ] = None,
+    force: Annotated[
+        bool, typer.Option("--force", help="Replace case folders that exist.")
+    ] = False,
+    site_lexicon: LexiconOption = None,
+) -> None:
+    """Run every case of a worklist on Dask; write OUTDIR/<id>/, index.html and summary.csv.
+
+    Exit codes: 0 every case done, 2 the worklist is unusable, 3 some case failed (its reason is
+    in summary.csv and index.html), 130 stopped by Ctrl-C (finished cases are complete).
+    """
+    from sigreport.batch import load_worklist, run_batch
+
+    try:
+        entries = load_worklist(worklist)
+        with _batch_progress(len(entries.cases)) as (on_start, on_result):
+            result = run_batch(
+                entries,
+                out,
+                scheduler=scheduler,
+                workers=workers,
+                register=register,
+                force=force,
+                site_lexicon=site_lexicon,
+                on_result=on_result,
+                on_start=on_start,
+            )
+    except InputError as exc:
+        raise _fail(str(exc)) from None
+    except Exception:
+        raise _bug(None) from None
+    done = len(result.cases) - result.n_failed
+    _say(f"{done} of {len(result.cases)} case(s) done")
+    for case in result.cases:
+        if case["status"] != "done":
+            _say(f"  {case['status']} {case['id']}: {case['reason']}")
+    typer.echo(terminal_text(str(result.index_html)))
+    if result.interrupted:
+        raise typer.Exit(130)
+    if result.n_failed:
+        raise typer.Exit(3)
+
+
 # --------------------------------------------------------------------------------------------
+
+
+class _batch_progress:
+    """Cases done / failed: a rich progress bar on a terminal, else one line per case. Case ids
+    and reasons are printed as data, never as rich markup."""
+
+    def __init__(self, total: int) -> None:
+        self.total = total
+        self._progress = None
+        self._task = None
+        self._failed = 0
+
+    def __enter__(self):  # type: ignore[no-untyped-def]
+        if err.is_terminal:
+            from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
+
+            self._progress = Progress(
+                TextColumn("cases"),
+                BarColumn(),
+                MofNCompleteColumn(),
+                TextColumn("{task.fields[failed]} failed", markup=False),
+                TextColumn("{task.fields[last]}", markup=False),
+                console=err,
+            )
+            self._progress.start()
+            self._task = self._progress.add_task("cases", total=self.total, failed=0, last="")
+
+        def on_start(n_workers: int) -> None:
+            self._line(f"{self.total} case(s) on {n_workers} worker(s)")
+
+        def on_result(summary: dict) -> None:  # type: ignore[type-arg]
+            ok = summary["status"] == "done"
+            self._failed += 0 if ok else 1
+            line = f"{summary['status']} {summary['id']}" + ("" if ok else f": {summary['reason']}")
+            if self._progress is not None:
+                self._progress.update(  # type: ignore[attr-defined]
+                    self._task,
+                    advance=1,
+                    failed=self._failed,
+                    last=terminal_text(f"{summary['id']} {summary['status']}"),
+                )
+            self._line(line)
+
+        return on_start, on_result
+
+    def _line(self, text: str) -> None:
+        console = self._progress.console if self._progress is not None else err  # type: ignore[attr-defined]
+        console.print(terminal_text(text), markup=False, highlight=False, soft_wrap=True)
+
+    def __exit__(self, *exc: object) -> None:
+        if self._progress is not None:
+            self._progress.stop()
 
 
 class ProgressDisplay:

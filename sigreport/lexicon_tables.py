@@ -58,6 +58,11 @@ _WORDING_SECTIONS: dict[str, set[str]] = {
         "behaviour_no_considerations", "list_separator", "list_last_separator",
         "considerations_separator",
     },
+    "change": {
+        "since", "since_nothing", "new", "interval", "interval_unknown", "date_unknown",
+        "larger", "smaller", "same_volume", "newly_enhancing", "no_longer_enhancing",
+        "enhancement", "ratio", "items_separator", "not_seen", "not_seen_lesion",
+    },
     "qc": {"warning", "error", "info", "none"},
 }  # fmt: skip
 
@@ -71,6 +76,7 @@ class Wording:
     patterns: dict[str, str]
     sentences: dict[str, str]
     qc: dict[str, str]
+    change: dict[str, str]  # interval change against a prior study
     source: Path
 
     def role_name(self, role: str) -> str:
@@ -114,11 +120,11 @@ def load_wording(site: Path | str | None = None) -> Wording:
         if missing:
             raise InputError(f"{path} [{section}]: missing key(s) {', '.join(missing)}")
         parsed[section] = values
-    for section in ("titles", "roles", "patterns", "sentences", "qc"):
+    for section in ("titles", "roles", "patterns", "sentences", "qc", "change"):
         for key, value in parsed[section].items():
             if not isinstance(value, str):
                 raise InputError(f"{path} [{section}] {key}: expected a string, got {value!r}")
-    for key, value in parsed["sentences"].items():
+    for key, value in [*parsed["sentences"].items(), *parsed["change"].items()]:
         try:
             placeholders(value)
         except ValueError as exc:
@@ -129,6 +135,7 @@ def load_wording(site: Path | str | None = None) -> Wording:
         patterns=dict(parsed["patterns"]),
         sentences=dict(parsed["sentences"]),
         qc=dict(parsed["qc"]),
+        change=dict(parsed["change"]),
         source=path,
     )
 

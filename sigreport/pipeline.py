@@ -33,6 +33,7 @@ from sigreport.errors import InputError
 from sigreport.ingest import index_study, load_stack
 from sigreport.lexicon_tables import Lexicon, load_lexicon
 from sigreport.measure import Characterization, characterize, measure_roi, noise_sigma
+from sigreport.measure.change import interval_change, with_interval_change
 from sigreport.model import (
     ROLE_ORDER,
     AlignedStudy,
@@ -46,6 +47,7 @@ from sigreport.model import (
     QcNote,
     ReportPlan,
     RoiKind,
+    RoiShape,
     Role,
     SeriesMeasurement,
     Stack,
@@ -600,6 +602,8 @@ def run_report(
     site_lexicon: Path | None = None,
     progress: Progress | None = None,
     study_index: StudyIndex | None = None,
+    prior_study: Path | None = None,
+    prior_case: Path | None = None,
 ) -> ReportRun:
     """Place the case's ROIs on every series of the study, measure, characterize and write the
     report folder (:func:`analyze_case`, then :func:`sigreport.report.write_report`).
@@ -621,12 +625,26 @@ def run_report(
         Told about each step (:class:`sigreport.model.Progress`).
     study_index
         As :func:`plan_report` (an archive's study, fetched into ``study_dir``).
+    prior_study, prior_case
+        A prior study of the same patient and its case file: each lesion gets ``change``
+        against the prior's lesion of the same id (docs/measurements.md, Interval change). The
+        prior is measured with the same stages, options and lexicon, and nothing of it is
+        written. ``prior_study`` defaults to the prior case file's ``study``.
     """
     case = load_case(Path(case_path))
     # Every lexicon table is validated here, before any work (a missing site folder too).
     lexicon = load_lexicon(site_lexicon if site_lexicon is not None else case.lexicon)
     study = resolve_study_dir(case, study_dir)
-    out_dir = check_outdir(out_dir, inputs=report_inputs(case, study, lexicon.site), force=force)
+    if prior_study is not None and prior_case is None:
+        raise InputError(
+            "--prior needs --prior-case: the prior study's ROIs come from its case file"
+        )
+    inputs = report_inputs(case, study, lexicon.site)
+    if prior_case is not None:
+        inputs.append(("the prior case file", Path(prior_case)))
+    if prior_study is not None:
+        inputs.append(("the prior study folder", Path(prior_study)))
+    out_dir = check_outdir(out_dir, inputs=inputs, force=force)
     analysis = analyze_case(
         case,
         study_dir=study,
@@ -635,10 +653,15 @@ def run_report(
         progress=progress,
         study_index=study_index,
     )
+    findings = analysis.findings
+    if prior_case is not None:
+        findings = _with_prior(
+            findings, analysis.plan.case, Path(prior_case), prior_study, register, lexicon, progress
+        )
     say(progress, f"writing {out_dir}")
     html = write_report(
         out_dir,
-        analysis.findings,
+        findings,
         analysis.key_slices,
         {r.value: s for r, s in analysis.stacks.items()},
         force=force,
@@ -647,7 +670,45 @@ def run_report(
         progress=progress,
         extra_files=analysis.files,
     )
-    return ReportRun(out_dir=out_dir, report_html=html, findings=analysis.findings)
+    return ReportRun(out_dir=out_dir, report_html=html, findings=findings)
+
+
+def _with_prior(
+    findings: dict[str, Any],
+    case: Case,
+    prior_case: Path,
+    prior_study: Path | None,
+    register: bool | None,
+    lexicon: Lexicon,
+    progress: Progress | None,
+) -> dict[str, Any]:
+    """``findings`` with the interval change against the prior, measured by the same stages
+    with the same options and lexicon (the prior case file's own ``lexicon =`` is not used)."""
+    say(progress, f"measuring the prior study ({prior_case})")
+    try:
+        prior = load_case(prior_case)
+        prior_findings = analyze_case(
+            prior,
+            study_dir=prior_study,
+            register=register,
+            lexicon=lexicon,
+            progress=progress,
+        ).findings
+    except InputError as exc:
+        raise InputError(f"prior study: {exc}") from None
+    change = interval_change(
+        findings,
+        prior_findings,
+        current_outlined=_outlined(case),
+        prior_outlined=_outlined(prior),
+    )
+    return with_interval_change(findings, change)
+
+
+def _outlined(case: Case) -> set[str]:
+    """Ids of the case's ROIs drawn as outlines (mask, SEG, RTSTRUCT, annotation) or grown from
+    a seed, not typed shapes: only these give a lesion's size."""
+    return {spec.id for spec in case.rois if spec.shape in (RoiShape.MASK, RoiShape.SEED)}
 
 
 def _alignments_by_key(

@@ -97,6 +97,11 @@ def build_findings(
             "study_instance_uid": study.study_instance_uid,
             "study_date": study.study_date,
             "accession_number": study.accession_number,
+            # For the human reports' header; the de-identified export removes them.
+            "patient_name": study.patient_name,
+            "patient_id": study.patient_id,
+            "birth_date": study.patient_birth_date,
+            "sex": study.patient_sex,
         },
         "series": series,
         "rois": [dict(r) for r in result.rois],

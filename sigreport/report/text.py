@@ -242,7 +242,95 @@ def lesion_sentences(
         out.append(s["flow_void"])
     elif flow_void is False:
         out.append(s["no_flow_void"])
+    change = change_sentence(lesion, wording)
+    if change:
+        out.append(change)
     return [_capital(sentence) for sentence in out]
+
+
+def display_date(value: Any, wording: Wording) -> str:
+    """A DICOM DA (``YYYYMMDD``, PS3.5 6.2) as ``YYYY-MM-DD`` (ISO 8601), else as given."""
+    text = "" if value is None else str(value).strip()
+    if len(text) == 8 and text.isdigit():
+        return f"{text[:4]}-{text[4:6]}-{text[6:]}"
+    return text or wording.change["date_unknown"]
+
+
+def change_sentence(lesion: Mapping[str, Any], wording: Wording) -> str:
+    """The interval-change sentence of a lesion (empty without a prior): "Since the prior study
+    of 2026-06-03 (183 days): larger by 35 %; newly enhancing (...)." The words come from the
+    lexicon's ``[change]``; no judgement of progression is made."""
+    change = lesion.get("change")
+    if not isinstance(change, Mapping):
+        return ""
+    c = wording.change
+    date = display_date(change.get("prior_study_date"), wording)
+    if change.get("status") == "new":
+        return fill(c["new"], "new", date=date)
+    days = change.get("interval_days")
+    interval = (
+        c["interval_unknown"] if days is None else fill(c["interval"], "interval", days=str(days))
+    )
+    items: list[str] = []
+    volume = change.get("volume_change_percent")
+    if volume is not None:
+        rounded = round(float(volume))
+        if rounded > 0:
+            items.append(fill(c["larger"], "larger", percent=str(rounded)))
+        elif rounded < 0:
+            items.append(fill(c["smaller"], "smaller", percent=str(-rounded)))
+        else:
+            items.append(c["same_volume"])
+    pp = change.get("enhancement_change_pp")
+    if pp is not None:
+        now = (lesion.get("enhancement") or {}).get("enhancing")
+        before = change.get("enhancing_before")
+        key = "enhancement"
+        if now is True and before is False:
+            key = "newly_enhancing"
+        elif now is False and before is True:
+            key = "no_longer_enhancing"
+        items.append(fill(c[key], key, pp=_signed(pp)))
+    ratios: Mapping[str, Any] = change.get("ratio_change") or {}
+    for role in sorted(ratios, key=role_sort_key):
+        if round(float(ratios[role]), 2) == 0:
+            continue  # "+0.00" says nothing; findings.json keeps the value
+        items.append(
+            fill(
+                c["ratio"],
+                "ratio",
+                delta=f"{float(ratios[role]):+.2f}",
+                role=wording.role_name(role),
+            )
+        )
+    if not items:
+        return fill(c["since_nothing"], "since_nothing", date=date, interval=interval)
+    return fill(
+        c["since"], "since", date=date, interval=interval, items=c["items_separator"].join(items)
+    )
+
+
+def not_seen_sentence(findings: Mapping[str, Any], wording: Wording) -> str:
+    """The prior's lesions that this study does not have (empty when none, or no prior)."""
+    prior = findings.get("prior")
+    if not isinstance(prior, Mapping) or not prior.get("not_seen"):
+        return ""
+    c = wording.change
+    lesions = [
+        fill(
+            c["not_seen_lesion"],
+            "not_seen_lesion",
+            id=str(item.get("id")),
+            site=str(item.get("site") or ""),
+        )
+        for item in prior["not_seen"]
+    ]
+    return fill(
+        c["not_seen"],
+        "not_seen",
+        date=display_date(prior.get("study_date"), wording),
+        lesions=wording.join(lesions),
+    )
 
 
 def behaviour_sentences(
@@ -420,6 +508,7 @@ def report_context(
             ["Lesion", "Role", "Series", "Median", "Ratio", "Grade", "Enh %", "Drop %", "Notes"],
             text_rows,
         ),
+        "not_seen": not_seen_sentence(findings, wording),
         "qc": qc,
         "qc_prominent": [n for n in qc if n["prominent"]],
         "qc_none": wording.qc["none"],

@@ -62,9 +62,12 @@ class RoiPlan:
     semi_axes_mm: Vec3 | None = None
     pattern: EnhancementPattern = EnhancementPattern.NONE
     reference: str | None = None
+    outline: bool = False  # written to the case file as a mask (a drawn outline), not a shape
 
     @property
     def shape(self) -> str:
+        if self.outline:
+            return "mask"
         return "sphere" if self.semi_axes_mm is None else "ellipsoid"
 
 
@@ -211,6 +214,7 @@ def _roi(entry: dict[str, Any], where: str) -> RoiPlan:
             "semi_axes_mm",
             "pattern",
             "reference",
+            "outline",
         },
         where,
     )
@@ -240,6 +244,7 @@ def _roi(entry: dict[str, Any], where: str) -> RoiPlan:
         semi_axes_mm=None if semi is None else _vec3(semi, f"{where}.semi_axes_mm"),
         pattern=pattern,
         reference=entry.get("reference"),
+        outline=bool(entry.get("outline", False)),
     )
 
 

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 import shutil
 import tempfile
 import tomllib
@@ -421,6 +422,25 @@ def _toml_value(value: Any) -> str:
     return repr(float(value)) if isinstance(value, float) else str(value)
 
 
+def outline_path(roi: RoiPlan) -> str:
+    """Where an ``outline = true`` ROI's mask is written, relative to the case file."""
+    return "rois/" + re.sub(r"[^A-Za-z0-9_-]", "_", roi.id) + ".nii.gz"
+
+
+def _write_outlines(
+    scn: Scenario, grid: phantom.Grid, masks: dict[str, np.ndarray], out: Path
+) -> None:
+    """The outline ROIs as label images on the 1 mm model grid, in the patient space of the
+    anchor (which never moves), as a reader's drawn outline would be."""
+    for roi in scn.rois:
+        if not roi.outline:
+            continue
+        image = sitk.Cast(model_image(masks[roi.id].astype(np.float32), grid), sitk.sitkUInt8)
+        path = out / outline_path(roi)
+        path.parent.mkdir(parents=True, exist_ok=True)
+        sitk.WriteImage(image, str(path))
+
+
 def _case_text(scn: Scenario, anchor_number: int) -> str:
     lines = [
         f"# Case file of the synthetic study {scn.name!r} (sigreport.synth); ROIs in patient",
@@ -439,11 +459,14 @@ def _case_text(scn: Scenario, anchor_number: int) -> str:
         if roi.kind is not RoiKind.LESION and roi.tissue:
             lines.append(f"tissue = {_toml_value(roi.tissue)}")
         lines.append(f'shape = "{roi.shape}"')
-        lines.append(f"center_mm = {_toml_value(list(roi.center_mm))}")
-        if roi.semi_axes_mm is not None:
-            lines.append(f"semi_axes_mm = {_toml_value(list(roi.semi_axes_mm))}")
+        if roi.outline:
+            lines.append(f"mask = {_toml_value(outline_path(roi))}")
         else:
-            lines.append(f"radius_mm = {_toml_value(roi.radius_mm)}")
+            lines.append(f"center_mm = {_toml_value(list(roi.center_mm))}")
+            if roi.semi_axes_mm is not None:
+                lines.append(f"semi_axes_mm = {_toml_value(list(roi.semi_axes_mm))}")
+            else:
+                lines.append(f"radius_mm = {_toml_value(roi.radius_mm)}")
         if roi.kind is RoiKind.LESION:
             lines.append(f"reference = {_toml_value(roi.reference or first_ref)}")
     return "\n".join(lines) + "\n"
@@ -760,5 +783,6 @@ def _write(
         "series": series_json,
         "rois": rois_json,
     }
+    _write_outlines(scn, grid, masks, out_dir)
     (out_dir / "case.toml").write_text(_case_text(scn, anchor_plan.number), encoding="utf-8")
     (out_dir / "truth.json").write_text(json.dumps(truth, indent=2) + "\n", encoding="utf-8")

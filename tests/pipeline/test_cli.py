@@ -121,6 +121,21 @@ def test_report_never_writes_into_the_study(tmp_path: Path):
     assert not out.exists()
 
 
+def test_report_never_replaces_a_folder_holding_the_study(tmp_path: Path):
+    scenario = Path(__file__).parents[1] / "synth" / "data" / "tiny.toml"
+    from sigreport.synth import generate_study
+
+    study = generate_study(scenario, tmp_path / "case")
+    # --force replaces OUTDIR whole: an OUTDIR around the study would delete it.
+    result = runner.invoke(
+        app,
+        ["report", str(study.study_dir), "--case", str(study.case_path),
+         "--out", str(study.root), "--force"],
+    )  # fmt: skip
+    assert result.exit_code == 2 and "contains the study folder" in result.output
+    assert study.study_dir.is_dir() and study.case_path.is_file()
+
+
 def test_a_bug_exits_1_and_keeps_the_traceback_in_outdir(tmp_path: Path, monkeypatch):
     import sigreport.pipeline
 

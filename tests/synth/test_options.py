@@ -3,6 +3,7 @@ uninformative descriptions, and the errors a user can see."""
 
 from __future__ import annotations
 
+import json
 import math
 
 import numpy as np
@@ -145,3 +146,32 @@ def test_field_strength_override(tools, tmp_path_factory):
             "ratio"
         ]
     )
+
+
+def test_outline_roi_is_written_as_a_mask_of_its_model_voxels(tools, tmp_path):
+    import tomllib
+
+    text = tools.TINY.read_text().replace(
+        'contains = ["cyst fluid"]', 'contains = ["cyst fluid"]\noutline = true'
+    )
+    scenario = tmp_path / "outlined.toml"
+    scenario.write_text(text)
+    study = generate_study(scenario, tmp_path / "out")
+    case = tomllib.loads(study.case_path.read_text())
+    roi = next(r for r in case["roi"] if r["id"] == "L1")
+    assert roi["shape"] == "mask" and "center_mm" not in roi
+    # Read back by SimpleITK's own NIfTI reader: the same voxels as the truth's count, centred
+    # on the ROI's centre in patient coordinates (LPS; NIfTI stores RAS, the reader converts).
+    image = sitk.ReadImage(str(study.case_path.parent / roi["mask"]))
+    mask = sitk.GetArrayFromImage(image) > 0
+    truth = json.loads(study.truth_path.read_text())
+    assert int(mask.sum()) == truth["rois"]["L1"]["n_voxels"]
+    k, j, i = np.nonzero(mask)
+    centre = np.mean(
+        [
+            image.TransformIndexToPhysicalPoint((int(a), int(b), int(c)))
+            for a, b, c in zip(i, j, k, strict=True)
+        ],
+        axis=0,
+    )
+    np.testing.assert_allclose(centre, [-27.0, -33.0, 14.0], atol=0.5)
