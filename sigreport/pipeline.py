@@ -225,7 +225,7 @@ def run_report(
     site_lexicon
         A site's lexicon folder; wins over the case file's ``lexicon``.
     """
-    from sigreport.align import identity_alignment, register_rigid
+    from sigreport.align import identity_alignment, load_settings, register_series
     from sigreport.ingest import index_study, load_stack
     from sigreport.measure import characterize, load_rules, measure_roi, noise_sigma
     from sigreport.report import write_report
@@ -293,6 +293,8 @@ def run_report(
     # The ROIs' box; register_rigid adds the lexicon's margin of anatomy around it.
     box = union_bounds(regions)
     alignments: dict[Role, Alignment] = {}
+    to_register: dict[Role, sitk.Image] = {}
+    other_frames: set[Role] = set()
     for role, stack in measured.items():
         if role is anchor_role:
             alignments[role] = identity_alignment("identity")
@@ -303,24 +305,38 @@ def run_report(
             and stack.frame_of_reference_uid != anchor.frame_of_reference_uid
         )
         if do_register or other_frame:
-            _say(progress, f"registering {role.value} to {anchor_role.value}")
-            alignment = register_rigid(
-                images[anchor_role], images[role], box_mm=box, site_lexicon=site
-            )
-            if other_frame and not do_register:
-                qc.append(
-                    QcNote(
-                        QcLevel.INFO,
-                        "registered-other-frame",
-                        f"{role.value} is in another frame of reference than the anchor; registered despite --no-register",
-                    )
-                )
+            to_register[role] = images[role]
+            if other_frame:
+                other_frames.add(role)
         else:
-            alignment = identity_alignment("frame-of-reference")
-        alignments[role] = alignment
+            alignments[role] = identity_alignment("frame-of-reference")
+    if to_register:
+        _say(
+            progress,
+            f"registering {', '.join(r.value for r in to_register)} to {anchor_role.value}",
+        )
+        # One call: the anchor's pyramid is built once and the series run in parallel.
+        registered = register_series(
+            images[anchor_role], to_register, box_mm=box, settings=load_settings(site)
+        )
+        alignments.update(registered)
+    for role in measured:
+        alignment = alignments[role]
+        if role in other_frames and not do_register:
+            qc.append(
+                QcNote(
+                    QcLevel.INFO,
+                    "registered-other-frame",
+                    f"{role.value} is in another frame of reference than the anchor; registered despite --no-register",
+                )
+            )
         qc.extend(
             QcNote(QcLevel.WARNING, "registration", f"{role.value}: {w}")
             for w in alignment.warnings
+        )
+        qc.extend(
+            QcNote(QcLevel.INFO, "registration-skipped", f"{role.value}: {n}")
+            for n in alignment.notes
         )
 
     min_voxels = int(rules.min_voxels)
