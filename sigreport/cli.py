@@ -28,6 +28,15 @@ app = typer.Typer(
 )
 err = Console(stderr=True, highlight=False)
 
+NoCacheOption = Annotated[
+    bool,
+    typer.Option(
+        "--no-cache",
+        help="Read every header again, neither using nor updating the header index cache "
+        "(kept in the user's cache directory).",
+    ),
+]
+
 LexiconOption = Annotated[
     Path | None,
     typer.Option(
@@ -82,13 +91,16 @@ def scan(
     ],
     as_json: Annotated[bool, typer.Option("--json", help="Print the series list as JSON.")] = False,
     site_lexicon: LexiconOption = None,
+    no_cache: NoCacheOption = False,
 ) -> None:
     """Index every DICOM file under STUDY_DIR, group into series, infer each series' role."""
     from sigreport.ingest import index_study, print_scan_table, scan_to_json
 
     try:
         with _progress_bar(enabled=not as_json) as progress:
-            index = index_study(study_dir, progress=progress, site_lexicon=site_lexicon)
+            index = index_study(
+                study_dir, progress=progress, site_lexicon=site_lexicon, use_cache=not no_cache
+            )
     except InputError as exc:
         raise _fail(str(exc)) from None
     if as_json:
@@ -116,6 +128,7 @@ def report(
     ] = None,
     force: Annotated[bool, typer.Option("--force", help="Replace OUTDIR if it exists.")] = False,
     site_lexicon: LexiconOption = None,
+    no_cache: NoCacheOption = False,
 ) -> None:
     """Place the ROIs, carry them to every series, measure, characterize, write OUTDIR."""
     from sigreport.pipeline import run_report
@@ -127,6 +140,7 @@ def report(
             study_dir=study_dir,
             register=register,
             force=force,
+            use_cache=not no_cache,
             site_lexicon=site_lexicon,
             progress=_status_printer(),
         )

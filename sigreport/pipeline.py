@@ -207,6 +207,7 @@ def run_report(
     force: bool = False,
     site_lexicon: Path | None = None,
     progress: Progress | None = None,
+    use_cache: bool = True,
 ) -> ReportRun:
     """Place the case's ROIs on every series of the study, measure, characterize and write the
     report folder.
@@ -224,6 +225,8 @@ def run_report(
         ``[options] register``, whose default is True.
     site_lexicon
         A site's lexicon folder; wins over the case file's ``lexicon``.
+    use_cache
+        Reuse the header index cache (``sigreport.ingest.cache``); False reads every header.
     """
     from sigreport.align import identity_alignment, load_settings, register_series
     from sigreport.ingest import index_study, load_stack
@@ -256,7 +259,7 @@ def run_report(
         )
 
     _say(progress, f"indexing {study_dir}")
-    index = index_study(Path(study_dir), site_lexicon=site)
+    index = index_study(Path(study_dir), site_lexicon=site, use_cache=use_cache)
     if not index.stacks:
         reasons = "; ".join(f"{s.path.name}: {s.reason}" for s in index.skipped[:5])
         raise InputError(

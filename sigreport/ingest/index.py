@@ -9,6 +9,7 @@ from dataclasses import replace
 from pathlib import Path
 
 from sigreport.errors import InputError
+from sigreport.ingest.cache import HeaderCache
 from sigreport.ingest.header import FrameRecord, SkipFile, read_frames
 from sigreport.ingest.roles import _infer, load_role_bands
 from sigreport.ingest.stacks import build_stacks
@@ -28,6 +29,8 @@ def index_study(
     *,
     progress: Callable[[int, int], None] | None = None,
     site_lexicon: Path | None = None,
+    use_cache: bool = True,
+    cache_dir: Path | None = None,
 ) -> StudyIndex:
     """Index every DICOM file under ``study_dir`` (recursively, any file names).
 
@@ -44,6 +47,10 @@ def index_study(
         Called as ``progress(done, total)`` after each file.
     site_lexicon
         A site lexicon folder (its ``roles.toml`` replaces the bundled one).
+    use_cache, cache_dir
+        Reuse (and update) the header index cache of this folder (``sigreport.ingest.cache``:
+        files whose size and modification time are unchanged are not read again); the cache
+        folder defaults to the user's cache directory.
 
     Raises
     ------
@@ -60,15 +67,17 @@ def index_study(
     records: list[FrameRecord] = []
     skipped: list[SkippedFile] = []
     total = len(files)
+    cache = HeaderCache(study_dir, directory=cache_dir, enabled=use_cache)
     for done, path in enumerate(files, start=1):
         try:
-            records.extend(read_frames(path))
+            records.extend(cache.read_frames(path, read_frames))
         except SkipFile as exc:
             skipped.append(SkippedFile(path=path, reason=str(exc)))
         except RecursionError:
             skipped.append(SkippedFile(path=path, reason="not readable: nesting too deep"))
         if progress is not None:
             progress(done, total)
+    cache.save()
 
     stacks = []
     for stack in build_stacks(records):
