@@ -182,8 +182,15 @@ def build_sr(
     context = hd.sr.ObservationContext(observer_device_context=device)
     # The image library (TID 1600) describes each image by its top-level geometry; an Enhanced
     # MR multi-frame file keeps that in functional groups, which highdicom's library entry does
-    # not read, so multi-frame sources are referenced by the measurements only.
-    library = [ds for ds in sources.datasets.values() if "PixelSpacing" in ds] or None
+    # not read, so multi-frame sources are referenced by the measurements only. One entry per
+    # series (its first key slice): the descriptors (modality, frame of reference, spacing,
+    # orientation) are the series'; the library's entries are optional (TID 1600/1601: 1-n, U)
+    # and one per key slice made them most of the document's size and writing time.
+    per_series: dict[str, Dataset] = {}
+    for ds in sources.datasets.values():
+        if "PixelSpacing" in ds:
+            per_series.setdefault(str(ds.SeriesInstanceUID), ds)
+    library = list(per_series.values()) or None
     report = hd.sr.MeasurementReport(
         observation_context=context,
         procedure_reported=codes.cid100.MultiparametricMRI,

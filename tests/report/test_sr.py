@@ -185,3 +185,25 @@ def test_the_document_content_view_is_the_whole_tree(findings, study, key_slices
         if item.ValueType == "TEXT" and item.ConceptNameCodeSequence[0].CodeValue == "112039"
     ]
     assert len(ids) == len(findings["lesions"]) and "placeholder" not in ids
+
+
+def test_image_library_describes_each_series_once(sr, study):
+    # TID 1600: Image Library > Image Library Group > image entries (PS3.16); one per series.
+    [library] = [
+        item
+        for item in sr.ContentSequence
+        if item.ValueType == "CONTAINER"
+        and item.ConceptNameCodeSequence[0].CodeValue == "111028"  # Image Library, PS3.16
+    ]
+    entries = [
+        entry.ReferencedSOPSequence[0].ReferencedSOPInstanceUID
+        for group in library.ContentSequence
+        for entry in group.ContentSequence
+        if entry.ValueType == "IMAGE"
+    ]
+    series_of = {
+        i.sop_instance_uid: s.series_instance_uid for s in study.values() for i in s.instances
+    }
+    assert len(entries) == len(set(entries))
+    assert sorted(series_of[uid] for uid in entries) == sorted({series_of[uid] for uid in entries})
+    assert len(entries) == len(study)
