@@ -33,13 +33,20 @@ from sigreport.pipeline import apply_role_overrides, choose_measured, run_report
 from sigreport.rois import load_case
 from sigreport.synth import demo_scenarios, generate_study
 
-GOALS = {"demo": 15.0, "demo_wall_s": 8.0, "peak_mb": 400.0, "eight": 20.0, "sr_s": 1.0, "cache": 5.0}
+GOALS = {
+    "demo": 15.0,
+    "demo_wall_s": 8.0,
+    "peak_mb": 400.0,
+    "eight": 20.0,
+    "sr_s": 1.0,
+    "cache": 5.0,
+}
 
 
 def _eight_series_scenario(folder: Path) -> Path:
     """The neuro scenario with its localizer replaced by a measured 2D oblique PD series."""
     text = demo_scenarios()["neuro"].read_text()
-    start = text.index("[[series]]\nrole = \"UNKNOWN\"")
+    start = text.index('[[series]]\nrole = "UNKNOWN"')
     end = text.index("[[series]]", start + 10)
     pd = """[[series]]
 role = "PD"
