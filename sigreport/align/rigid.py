@@ -392,7 +392,8 @@ def _register_prepared(
     anchor: _AnchorPyramid, moving: sitk.Image, settings: AlignmentSettings
 ) -> Alignment:
     """One series against the prepared anchor pyramid."""
-    moving_f = sitk.Cast(moving, sitk.sitkFloat32)
+    # Cast only what is used (the crop below), not a copy of the whole series per worker.
+    moving_f = moving
     base, levels = anchor.base, anchor.levels
     if anchor.box is not None:
         # Keep the anchor crop inside what the moving series covers (a thick-slice 2D series
@@ -421,6 +422,8 @@ def _register_prepared(
         moving_crop = _crop_to_box(moving_f, lo - wide, hi + wide, _MIN_CROP_VOXELS)
         if moving_crop is not None:
             moving_f = moving_crop
+    if moving_f.GetPixelID() != sitk.sitkFloat32:
+        moving_f = sitk.Cast(moving_f, sitk.sitkFloat32)
 
     size = np.asarray(base.GetSize(), dtype=np.float64)
     center = base.TransformContinuousIndexToPhysicalPoint(tuple((size - 1) / 2.0))
