@@ -32,6 +32,15 @@ app = typer.Typer(
 # Nothing printed is ever read as rich markup: values are data (see _say).
 err = Console(stderr=True, highlight=False, markup=False)
 
+NoCacheOption = Annotated[
+    bool,
+    typer.Option(
+        "--no-cache",
+        help="Read every header again, neither using nor updating the header index cache "
+        "(kept in the user's cache directory).",
+    ),
+]
+
 LexiconOption = Annotated[
     Path | None,
     typer.Option(
@@ -179,6 +188,7 @@ def scan(
     site_lexicon: LexiconOption = None,
     dicomweb: DicomwebOption = None,
     study_uid: StudyUidOption = None,
+    no_cache: NoCacheOption = False,
 ) -> None:
     """Index every DICOM file under STUDY_DIR, group into series, infer each series' role."""
     from sigreport.ingest import index_study, print_scan_table, scan_to_json
@@ -191,7 +201,9 @@ def scan(
         raise _fail("give STUDY_DIR, or --dicomweb URL --study-uid UID")
     try:
         with ProgressDisplay(quiet=as_json) as progress:
-            index = index_study(study_dir, progress=progress, site_lexicon=site_lexicon)
+            index = index_study(
+                study_dir, progress=progress, site_lexicon=site_lexicon, use_cache=not no_cache
+            )
     except InputError as exc:
         raise _fail(str(exc)) from None
     if as_json:
@@ -240,6 +252,7 @@ def report(
             show_default=False,
         ),
     ] = None,
+    no_cache: NoCacheOption = False,
 ) -> None:
     """Place the ROIs, carry them to every series, measure, characterize, write OUTDIR."""
     from sigreport.pipeline import run_report
@@ -266,6 +279,7 @@ def report(
                 progress=progress,
                 prior_study=prior,
                 prior_case=prior_case,
+                use_cache=not no_cache,
             )
     except InputError as exc:
         raise _fail(str(exc)) from None

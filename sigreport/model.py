@@ -389,6 +389,8 @@ class Alignment:
     metric: float | None = None
     transform: Any = None  # SimpleITK.Transform or None for identity
     warnings: tuple[str, ...] = ()
+    # Informational remarks for ``qc`` (e.g. the optimizer was skipped: already aligned).
+    notes: tuple[str, ...] = ()
     # The full rigid transform, so findings.json can reproduce it: an anchor point p maps to
     # matrix (p - center_mm) + center_mm + translation_mm in this series.
     center_mm: tuple[float, float, float] | None = None

@@ -25,10 +25,9 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
-import numpy as np
 import SimpleITK as sitk
 
-from sigreport.align import identity_alignment, register_rigid
+from sigreport.align import identity_alignment, register_rigid, register_series
 from sigreport.errors import InputError
 from sigreport.ingest import index_study, load_stack
 from sigreport.lexicon_tables import Lexicon, load_lexicon
@@ -268,6 +267,7 @@ def plan_report(
     register: bool | None = None,
     progress: Progress | None = None,
     study_index: StudyIndex | None = None,
+    use_cache: bool = True,
 ) -> ReportPlan:
     """Index the study and decide what to measure: roles (the case file's ``[roles]`` first),
     one series per role, the ROIs in patient space, the anchor series and whether to register.
@@ -289,6 +289,8 @@ def plan_report(
         The study's index when it was built elsewhere (``sigreport.archive`` builds it from an
         archive's metadata, with the fetched series' instances under ``study_dir``); the study
         folder is then not indexed again.
+    use_cache
+        Reuse the header index cache (``sigreport.ingest.cache``); False reads every header.
 
     Raises
     ------
@@ -298,7 +300,9 @@ def plan_report(
     """
     if study_index is None:
         say(progress, f"indexing {study_dir}")
-        index = index_study(Path(study_dir), progress=progress, bands=lexicon.role_bands)
+        index = index_study(
+            Path(study_dir), progress=progress, bands=lexicon.role_bands, use_cache=use_cache
+        )
     else:
         index = study_index
     if not index.stacks:
@@ -381,8 +385,9 @@ def align_series(
     box = union_bounds(plan.regions)
     alignments: dict[Role, Alignment] = {}
     qc: list[QcNote] = []
-    total = len(plan.measured)
-    for done, (role, stack) in enumerate(plan.measured.items()):
+    to_register: dict[Role, sitk.Image] = {}
+    other_frames: set[Role] = set()
+    for role, stack in plan.measured.items():
         if role is plan.anchor_role:
             alignments[role] = identity_alignment("identity")
             continue
@@ -392,24 +397,37 @@ def align_series(
             and stack.frame_of_reference_uid != anchor.frame_of_reference_uid
         )
         if plan.register or other_frame:
-            say(progress, f"registering {role.value} to {plan.anchor_role.value}", done, total)
-            alignment = register_rigid(
-                images[plan.anchor_role], images[role], box_mm=box, settings=settings
-            )
-            if other_frame and not plan.register:
-                qc.append(
-                    QcNote(
-                        QcLevel.INFO,
-                        "registered-other-frame",
-                        f"{role.value} is in another frame of reference than the anchor; registered despite --no-register",
-                    )
-                )
+            to_register[role] = images[role]
+            if other_frame:
+                other_frames.add(role)
         else:
-            alignment = identity_alignment("frame-of-reference")
-        alignments[role] = alignment
+            alignments[role] = identity_alignment("frame-of-reference")
+    if to_register:
+        say(
+            progress,
+            f"registering {', '.join(r.value for r in to_register)} to {plan.anchor_role.value}",
+        )
+        # One call: the anchor's pyramid is built once and the series run in parallel.
+        alignments.update(
+            register_series(images[plan.anchor_role], to_register, box_mm=box, settings=settings)
+        )
+    alignments = {role: alignments[role] for role in plan.measured}
+    for role, alignment in alignments.items():
+        if role in other_frames and not plan.register:
+            qc.append(
+                QcNote(
+                    QcLevel.INFO,
+                    "registered-other-frame",
+                    f"{role.value} is in another frame of reference than the anchor; registered despite --no-register",
+                )
+            )
         qc.extend(
             QcNote(QcLevel.WARNING, "registration", f"{role.value}: {w}")
             for w in alignment.warnings
+        )
+        qc.extend(
+            QcNote(QcLevel.INFO, "registration-skipped", f"{role.value}: {n}")
+            for n in alignment.notes
         )
     return AlignedStudy(alignments=alignments, qc=tuple(qc))
 
@@ -476,10 +494,11 @@ def measure_study(
                 to_region_space=transform.GetInverse() if transform is not None else None,
             )
             samples[(spec.id, role)] = sample
+            # Measured in the ROI's box only (the sample is kept to it).
             by_role[role] = measure_roi(
-                sitk.GetArrayViewFromImage(image),
-                sample.mask,
-                sample.weights,
+                sitk.GetArrayViewFromImage(image)[sample.box],
+                sample.box_mask,
+                sample.box_weights,
                 image.GetSpacing(),
                 lesion=spec.kind is RoiKind.LESION,
                 min_voxels=min_voxels,
@@ -522,6 +541,7 @@ def analyze_case(
     lexicon: Lexicon | None = None,
     progress: Progress | None = None,
     study_index: StudyIndex | None = None,
+    use_cache: bool = True,
 ) -> Analysis:
     """Every stage up to the findings: plan, load, align, measure, characterize, then the
     findings.json object and the key slices. Writes nothing.
@@ -542,7 +562,7 @@ def analyze_case(
         for a batch of cases.
     progress
         Told about each step (:class:`sigreport.model.Progress`).
-    study_index
+    study_index, use_cache
         As :func:`plan_report`.
 
     Returns
@@ -561,6 +581,7 @@ def analyze_case(
         register=register,
         progress=progress,
         study_index=study_index,
+        use_cache=use_cache,
     )
     images = load_series(plan, progress=progress)
     aligned = align_series(plan, images, progress=progress)
@@ -604,6 +625,7 @@ def run_report(
     study_index: StudyIndex | None = None,
     prior_study: Path | None = None,
     prior_case: Path | None = None,
+    use_cache: bool = True,
 ) -> ReportRun:
     """Place the case's ROIs on every series of the study, measure, characterize and write the
     report folder (:func:`analyze_case`, then :func:`sigreport.report.write_report`).
@@ -630,6 +652,8 @@ def run_report(
         against the prior's lesion of the same id (docs/measurements.md, Interval change). The
         prior is measured with the same stages, options and lexicon, and nothing of it is
         written. ``prior_study`` defaults to the prior case file's ``study``.
+    use_cache
+        Reuse the header index cache (``sigreport.ingest.cache``); False reads every header.
     """
     case = load_case(Path(case_path))
     # Every lexicon table is validated here, before any work (a missing site folder too).
@@ -652,6 +676,7 @@ def run_report(
         lexicon=lexicon,
         progress=progress,
         study_index=study_index,
+        use_cache=use_cache,
     )
     findings = analysis.findings
     if prior_case is not None:
@@ -742,9 +767,9 @@ def _overlap_notes(
     for spec in case.rois:
         if spec.kind is RoiKind.LESION:
             continue
-        own = samples[(spec.id, role)].mask
+        own = samples[(spec.id, role)]
         for lesion in lesions:
-            shared = int(np.count_nonzero(own & samples[(lesion.id, role)].mask))
+            shared = own.overlap(samples[(lesion.id, role)])
             if shared:
                 notes.append(
                     QcNote(

@@ -8,6 +8,13 @@ from sigreport.align.rigid import (
     identity_alignment,
     load_settings,
     register_rigid,
+    register_series,
 )
 
-__all__ = ["register_rigid", "identity_alignment", "AlignmentSettings", "load_settings"]
+__all__ = [
+    "register_rigid",
+    "register_series",
+    "identity_alignment",
+    "AlignmentSettings",
+    "load_settings",
+]

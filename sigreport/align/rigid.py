@@ -11,14 +11,25 @@ which keeps it to seconds and keeps distant anatomy that moved differently out.
 Deterministic: one sampling strategy (RANDOM, a fixed fraction of the anchor crop's voxels,
 with a fixed seed from the lexicon) and a fixed thread count, so the same pair gives the same
 answer on any machine.
+
+Speed (docs/performance.md): :func:`register_series` crops the anchor to the ROIs'
+neighbourhood and builds its smoothed pyramid once for all series, skips the optimizer for a
+series a cheap metric check finds already aligned, and registers the series in parallel threads
+(SimpleITK releases the GIL while ITK runs; each registration runs on one ITK thread, so the
+answers do not depend on the scheduling).
 """
 
 from __future__ import annotations
 
 import math
+import os
+import threading
+from collections.abc import Hashable, Iterator, Mapping
+from concurrent.futures import ThreadPoolExecutor
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, TypeVar
 
 import numpy as np
 import SimpleITK as sitk
@@ -27,7 +38,13 @@ from sigreport.errors import InputError
 from sigreport.lexicon import check_keys, read_table
 from sigreport.model import Alignment
 
-__all__ = ["register_rigid", "identity_alignment", "AlignmentSettings", "load_settings"]
+__all__ = [
+    "register_rigid",
+    "register_series",
+    "identity_alignment",
+    "AlignmentSettings",
+    "load_settings",
+]
 
 # ITK's threads take work dynamically, so partial sums (metric, pyramid filters) are added in a
 # varying order and results differ in the last bits from run to run. One thread, for this
@@ -51,6 +68,7 @@ class AlignmentSettings:
     min_step: float
     max_iterations: int
     max_samples: int
+    aligned_tolerance_mm: float
     max_translation_mm: float
     max_rotation_deg: float
     poor_metric: float
@@ -67,6 +85,7 @@ _REGISTRATION_KEYS = {
     "min_step",
     "max_iterations",
     "max_samples",
+    "aligned_tolerance_mm",
 }
 _QC_KEYS = {"max_translation_mm", "max_rotation_deg", "poor_metric"}
 
@@ -135,6 +154,7 @@ def load_settings(site_lexicon: Path | None = None) -> AlignmentSettings:
         min_step=_number(reg, "min_step", where),
         max_iterations=_integer(reg, "max_iterations", where, minimum=1),
         max_samples=_integer(reg, "max_samples", where, minimum=1000),
+        aligned_tolerance_mm=_number(reg, "aligned_tolerance_mm", where, positive=False),
         max_translation_mm=_number(qc, "max_translation_mm", "alignment.toml [qc]"),
         max_rotation_deg=_number(qc, "max_rotation_deg", "alignment.toml [qc]"),
         poor_metric=_number(qc, "poor_metric", "alignment.toml [qc]", positive=False),
@@ -146,10 +166,11 @@ def identity_alignment(method: str = "identity") -> Alignment:
     return Alignment(method=method, transform=None)
 
 
-def _crop_to_box(
+def _crop_index(
     image: sitk.Image, lo: np.ndarray, hi: np.ndarray, min_voxels: int
-) -> sitk.Image | None:
-    """The part of ``image`` whose voxels fall in the LPS box (lo, hi), or None if none does."""
+) -> tuple[list[int], list[int]] | None:
+    """``(size, first index)`` of the part of ``image`` whose voxels fall in the LPS box
+    (lo, hi), widened to ``min_voxels`` per axis; None when no voxel does."""
     size = np.asarray(image.GetSize())
     corners = np.array(
         [
@@ -171,24 +192,33 @@ def _crop_to_box(
     last = np.minimum(last + grow, size - 1)
     if np.any(last < first):
         return None
-    return sitk.RegionOfInterest(
-        image,
-        [int(v) for v in (last - first + 1)],
-        [int(v) for v in first],
-    )
+    return [int(v) for v in (last - first + 1)], [int(v) for v in first]
 
 
-def _smoothed(image: sitk.Image, sigma_mm: float) -> sitk.Image:
+def _crop_to_box(
+    image: sitk.Image, lo: np.ndarray, hi: np.ndarray, min_voxels: int
+) -> sitk.Image | None:
+    """The part of ``image`` whose voxels fall in the LPS box (lo, hi), or None if none does."""
+    region = _crop_index(image, lo, hi, min_voxels)
+    return None if region is None else sitk.RegionOfInterest(image, *region)
+
+
+def _smoothed(image: sitk.Image, sigma_mm: float, threads: int = _THREADS) -> sitk.Image:
     """Gaussian smoothing in millimetres (none for sigma 0)."""
     if sigma_mm <= 0:
         return image
     # Discrete (not recursive) Gaussian: the recursive filter is inaccurate when sigma is below
     # the voxel spacing, as it is across the slices of a thick-slice series. Axes whose spacing
-    # is much coarser than sigma are left unsmoothed.
+    # is much coarser than sigma are left unsmoothed. A convolution computes each voxel on its
+    # own, so the result does not depend on the thread count.
     variance = [
         float(sigma_mm) ** 2 if spacing < 2.0 * sigma_mm else 0.0 for spacing in image.GetSpacing()
     ]
-    return sitk.DiscreteGaussian(image, variance=variance, useImageSpacing=True)
+    smoother = sitk.DiscreteGaussianImageFilter()
+    smoother.SetVariance(variance)
+    smoother.SetUseImageSpacing(True)
+    smoother.SetNumberOfThreads(threads)
+    return smoother.Execute(image)
 
 
 def _physical_bounds(image: sitk.Image) -> tuple[np.ndarray, np.ndarray]:
@@ -224,84 +254,159 @@ def _rotation_angle_deg(matrix: np.ndarray) -> float:
     return math.degrees(math.acos(max(-1.0, min(1.0, cos))))
 
 
-def register_rigid(
+def _check_box(
+    box_mm: tuple[np.ndarray, np.ndarray] | None,
+) -> tuple[np.ndarray, np.ndarray] | None:
+    if box_mm is None:
+        return None
+    lo = np.asarray(box_mm[0], dtype=np.float64).reshape(-1)
+    hi = np.asarray(box_mm[1], dtype=np.float64).reshape(-1)
+    if lo.shape != (3,) or hi.shape != (3,) or not np.all(lo <= hi):
+        raise ValueError(
+            f'Argument "box_mm" must be (lo, hi) with 3 values each and lo <= hi, got {box_mm!r}.'
+        )
+    return lo, hi
+
+
+def _check_image(name: str, image: Any) -> None:
+    if not isinstance(image, sitk.Image) or image.GetDimension() != 3:
+        raise ValueError(f'Argument "{name}" must be a 3D SimpleITK image.')
+
+
+@dataclass(frozen=True)
+class _AnchorPyramid:
+    """The anchor cropped to the ROIs' neighbourhood and smoothed once per pyramid level
+    (not yet shrunk: each series crops it further to what it covers, then shrinks)."""
+
+    base: sitk.Image  # float32 crop, unsmoothed
+    levels: tuple[sitk.Image, ...]  # one smoothed copy of ``base`` per level
+    box: tuple[np.ndarray, np.ndarray] | None  # the box with its margin; None: whole anchor
+
+
+def _anchor_pyramid(
     fixed: sitk.Image,
-    moving: sitk.Image,
-    *,
-    box_mm: tuple[np.ndarray, np.ndarray] | None = None,
-    site_lexicon: Path | None = None,
-    settings: AlignmentSettings | None = None,
-) -> Alignment:
-    """Align ``moving`` (a series) to ``fixed`` (the anchor) by a rigid transform.
+    box: tuple[np.ndarray, np.ndarray] | None,
+    settings: AlignmentSettings,
+    threads: int,
+) -> _AnchorPyramid | None:
+    """Crop first (smoothing a whole 1 mm head is the slow part), then smooth each level.
+    None when the box misses the anchor."""
+    base = sitk.Cast(fixed, sitk.sitkFloat32)
+    wide = None
+    if box is not None:
+        lo, hi = box[0] - settings.margin_mm, box[1] + settings.margin_mm
+        # Crop a little wider than needed, so that the Gaussian's edge effects stay outside
+        # what the metric samples.
+        apron = max(settings.smoothing_sigmas_mm, default=0.0) * 2.0
+        cropped = _crop_to_box(base, lo - apron, hi + apron, _MIN_CROP_VOXELS)
+        if cropped is None or _crop_index(base, lo, hi, _MIN_CROP_VOXELS) is None:
+            return None
+        base, wide = cropped, (lo, hi)
+    levels = tuple(_smoothed(base, sigma, threads) for sigma in settings.smoothing_sigmas_mm)
+    return _AnchorPyramid(base=base, levels=levels, box=wide)
 
-    Parameters
-    ----------
-    fixed : SimpleITK.Image
-        The anchor series.
-    moving : SimpleITK.Image
-        Another series of the same patient.
-    box_mm : (numpy.ndarray, numpy.ndarray), optional
-        ``(lo, hi)`` LPS box of the region to align on, e.g. the union of the ROIs'
-        ``bounds_mm()``; ``margin_mm`` of ``alignment.toml`` is added on every side. None: the
-        whole anchor.
-    site_lexicon : pathlib.Path, optional
-        A site lexicon folder whose ``alignment.toml`` replaces the bundled one; read only when
-        ``settings`` is not given.
-    settings : AlignmentSettings, optional
-        The run's registration settings (``Lexicon.alignment``), loaded once for every series.
 
-    Returns
-    -------
-    sigreport.model.Alignment
-        ``method="rigid"``; ``transform`` (a ``SimpleITK.Euler3DTransform`` centred on the box)
-        maps anchor points to this series' points; ``translation_mm`` is how far the box centre
-        moved, ``rotation_deg`` the total rotation angle, ``metric`` the final Mattes mutual
-        information (negated by ITK: lower is better). ``warnings`` name a large motion, a poor
-        final metric or an optimizer that hit its iteration cap. When registration cannot run
-        (no overlap), the result is ``method="identity"`` with a warning saying so.
+def _registration_method(
+    settings: AlignmentSettings, fraction: float, learning_rate: float
+) -> sitk.ImageRegistrationMethod:
+    reg = sitk.ImageRegistrationMethod()
+    reg.SetNumberOfThreads(_THREADS)
+    reg.SetMetricAsMattesMutualInformation(numberOfHistogramBins=settings.histogram_bins)
+    reg.SetMetricSamplingStrategy(reg.RANDOM)
+    # Central differences for the moving image's gradient: ITK's default gradient filter is a
+    # recursive Gaussian, inaccurate across the 5-6 mm slices of 2D series.
+    reg.SetMetricUseMovingImageGradientFilter(False)
+    reg.SetMetricSamplingPercentage(fraction, settings.seed)
+    reg.SetInterpolator(sitk.sitkLinear)
+    reg.SetOptimizerAsRegularStepGradientDescent(
+        learningRate=learning_rate,
+        minStep=settings.min_step,
+        numberOfIterations=settings.max_iterations,
+        relaxationFactor=0.5,
+        gradientMagnitudeTolerance=1e-8,
+    )
+    reg.SetOptimizerScalesFromPhysicalShift()
+    return reg
 
-    Raises
-    ------
-    ValueError
-        When the images are not 3D, or ``box_mm`` is not two 3-vectors with lo <= hi.
-    sigreport.errors.InputError
-        When the lexicon's ``alignment.toml`` is invalid.
+
+def _shrunk(image: sitk.Image, shrink: int) -> sitk.Image:
+    if shrink <= 1:
+        return image
+    shrinker = sitk.BinShrinkImageFilter()
+    shrinker.SetShrinkFactors([max(1, min(shrink, n // 4)) for n in image.GetSize()])
+    shrinker.SetNumberOfThreads(_THREADS)
+    return shrinker.Execute(image)
+
+
+def _already_aligned(
+    fixed_level: sitk.Image,
+    moving_level: sitk.Image,
+    center: tuple[float, ...],
+    fraction: float,
+    settings: AlignmentSettings,
+) -> tuple[bool, float, float]:
+    """Is the scanner's alignment already within ``aligned_tolerance_mm`` of the metric's
+    optimum? Probes the metric one step either side of identity along each rigid parameter
+    and puts the minimum of the parabola through the three values (Newton's step on the
+    diagonal of the Hessian). Stops at the first parameter whose minimum lies farther.
+
+    Returns (aligned, metric at identity, largest estimated offset in mm).
     """
-    for name, image in (("fixed", fixed), ("moving", moving)):
-        if not isinstance(image, sitk.Image) or image.GetDimension() != 3:
-            raise ValueError(f'Argument "{name}" must be a 3D SimpleITK image.')
-    if settings is None:
-        settings = load_settings(site_lexicon)
-    fixed_f = sitk.Cast(fixed, sitk.sitkFloat32)
-    moving_f = sitk.Cast(moving, sitk.sitkFloat32)
+    size = np.asarray(fixed_level.GetSize(), dtype=np.float64)
+    spacing = np.asarray(fixed_level.GetSpacing(), dtype=np.float64)
+    radius = float(np.linalg.norm((size - 1) * spacing) / 2.0)  # centre to corner, mm
+    if radius <= 0:
+        return False, math.nan, math.inf
+    probe_mm = 1.0
+    reg = _registration_method(settings, fraction, settings.learning_rate)
 
-    if box_mm is not None:
-        lo = np.asarray(box_mm[0], dtype=np.float64).reshape(-1)
-        hi = np.asarray(box_mm[1], dtype=np.float64).reshape(-1)
-        if lo.shape != (3,) or hi.shape != (3,) or not np.all(lo <= hi):
-            raise ValueError(
-                f'Argument "box_mm" must be (lo, hi) with 3 values each and lo <= hi, got {box_mm!r}.'
-            )
-        lo = lo - settings.margin_mm
-        hi = hi + settings.margin_mm
-        cropped = _crop_to_box(fixed_f, lo, hi, _MIN_CROP_VOXELS)
-        if cropped is None:
-            return Alignment(
-                method="identity",
-                warnings=(
-                    "rigid registration skipped: the ROIs' neighbourhood is outside the anchor "
-                    "series; the scanner's frame of reference was kept",
-                ),
-            )
+    def metric(params: list[float]) -> float:
+        transform = sitk.Euler3DTransform()
+        transform.SetCenter(center)
+        transform.SetParameters(params)
+        reg.SetInitialTransform(transform, inPlace=False)
+        return float(reg.MetricEvaluate(fixed_level, moving_level))
+
+    at_identity = metric([0.0] * 6)
+    worst = 0.0
+    # Euler3DTransform parameters: rotations (rad) about x, y, z, then the translation (mm).
+    # A rotation of probe_mm / radius moves the crop's corner by probe_mm.
+    for k in (3, 4, 5, 0, 1, 2):
+        step = probe_mm / radius if k < 3 else probe_mm
+        values = []
+        for sign in (-1.0, 1.0):
+            params = [0.0] * 6
+            params[k] = sign * step
+            values.append(metric(params))
+        curvature = values[0] + values[1] - 2.0 * at_identity
+        if not curvature > 0:
+            return False, at_identity, math.inf  # not a minimum along this parameter
+        offset_mm = abs(probe_mm * (values[0] - values[1]) / (2.0 * curvature))
+        worst = max(worst, offset_mm)
+        if offset_mm > settings.aligned_tolerance_mm:
+            return False, at_identity, worst
+    return True, at_identity, worst
+
+
+def _register_prepared(
+    anchor: _AnchorPyramid, moving: sitk.Image, settings: AlignmentSettings
+) -> Alignment:
+    """One series against the prepared anchor pyramid."""
+    # Cast only what is used (the crop below), not a copy of the whole series per worker.
+    moving_f = moving
+    base, levels = anchor.base, anchor.levels
+    if anchor.box is not None:
         # Keep the anchor crop inside what the moving series covers (a thick-slice 2D series
         # often covers less than the ROIs' neighbourhood): anchor samples that land outside the
         # moving image are dropped by the metric, and mutual information then rewards moving
         # away from the anatomy (less overlap), which makes the optimizer diverge.
+        lo, hi = anchor.box
         moving_lo, moving_hi = _physical_bounds(moving_f)
         inset = settings.max_translation_mm
         lo = np.maximum(lo, moving_lo + inset)
         hi = np.minimum(hi, moving_hi - inset)
-        if np.any(hi <= lo) or (cropped := _crop_to_box(fixed_f, lo, hi, _MIN_CROP_VOXELS)) is None:
+        region = None if np.any(hi <= lo) else _crop_index(base, lo, hi, _MIN_CROP_VOXELS)
+        if region is None:
             return Alignment(
                 method="identity",
                 warnings=(
@@ -309,57 +414,60 @@ def register_rigid(
                     "neighbourhood; the scanner's frame of reference was kept",
                 ),
             )
-        fixed_f = cropped
+        base = sitk.RegionOfInterest(base, *region)
+        levels = tuple(sitk.RegionOfInterest(level, *region) for level in levels)
         # The moving series only needs to cover where the anchor crop can land after a few mm
         # of motion; cropping it keeps the pyramid's smoothing cheap on large series.
         wide = settings.margin_mm + 2.0 * settings.max_translation_mm
         moving_crop = _crop_to_box(moving_f, lo - wide, hi + wide, _MIN_CROP_VOXELS)
         if moving_crop is not None:
             moving_f = moving_crop
+    if moving_f.GetPixelID() != sitk.sitkFloat32:
+        moving_f = sitk.Cast(moving_f, sitk.sitkFloat32)
 
-    size = np.asarray(fixed_f.GetSize(), dtype=np.float64)
-    center = fixed_f.TransformContinuousIndexToPhysicalPoint(tuple((size - 1) / 2.0))
-    initial = sitk.Euler3DTransform()
-    initial.SetCenter(center)
+    size = np.asarray(base.GetSize(), dtype=np.float64)
+    center = base.TransformContinuousIndexToPhysicalPoint(tuple((size - 1) / 2.0))
+    fractions = _sampling_per_level(base, settings)
+    n_levels = len(settings.shrink_factors)
 
     # A coarse-to-fine pyramid built by hand: ITK's own pyramid shrinks the moving image by
     # the same factor as the fixed one, and a thick-slice 2D series (13 slices of 6 mm) shrunk
     # 4x keeps 3 slices, on which the coarse level diverges. Here only the anchor is shrunk
     # (it defines where the metric samples); the moving series is only smoothed, and is
     # interpolated at its own resolution.
-    previous_threads = sitk.ProcessObject.GetGlobalDefaultNumberOfThreads()
-    sitk.ProcessObject.SetGlobalDefaultNumberOfThreads(_THREADS)
-    current: sitk.Transform = initial
     try:
-        for shrink, sigma, fraction in zip(
-            settings.shrink_factors,
-            settings.smoothing_sigmas_mm,
-            _sampling_per_level(fixed_f, settings),
-            strict=True,
-        ):
-            fixed_level = _smoothed(fixed_f, sigma)
-            if shrink > 1:
-                fixed_level = sitk.BinShrink(
-                    fixed_level, [max(1, min(shrink, n // 4)) for n in fixed_level.GetSize()]
-                )
-            moving_level = _smoothed(moving_f, sigma)
-            reg = sitk.ImageRegistrationMethod()
-            reg.SetNumberOfThreads(_THREADS)
-            reg.SetMetricAsMattesMutualInformation(numberOfHistogramBins=settings.histogram_bins)
-            reg.SetMetricSamplingStrategy(reg.RANDOM)
-            # Central differences for the moving image's gradient: ITK's default gradient
-            # filter is a recursive Gaussian, inaccurate across the 5-6 mm slices of 2D series.
-            reg.SetMetricUseMovingImageGradientFilter(False)
-            reg.SetMetricSamplingPercentage(fraction, settings.seed)
-            reg.SetInterpolator(sitk.sitkLinear)
-            reg.SetOptimizerAsRegularStepGradientDescent(
-                learningRate=settings.learning_rate / shrink,
-                minStep=settings.min_step,
-                numberOfIterations=settings.max_iterations,
-                relaxationFactor=0.5,
-                gradientMagnitudeTolerance=1e-8,
+        check = max(0, n_levels - 2)  # the second-finest level: smooth, yet detailed
+        check_fixed = _shrunk(levels[check], settings.shrink_factors[check])
+        check_moving = _smoothed(moving_f, settings.smoothing_sigmas_mm[check])
+        aligned, at_identity, offset = _already_aligned(
+            check_fixed, check_moving, center, fractions[check], settings
+        )
+        if aligned:
+            final = sitk.Euler3DTransform()
+            final.SetCenter(center)
+            return Alignment(
+                method="rigid",
+                translation_mm=(0.0, 0.0, 0.0),
+                rotation_deg=0.0,
+                metric=at_identity,
+                transform=final,
+                notes=(
+                    "already aligned with the anchor: the metric's optimum is within "
+                    f"{offset:.2f} mm of the scanner's alignment (tolerance "
+                    f"{settings.aligned_tolerance_mm:g} mm), so the optimizer was skipped",
+                ),
+                center_mm=tuple(float(v) for v in center),  # type: ignore[arg-type]
+                matrix=tuple(float(v) for v in final.GetMatrix()),
             )
-            reg.SetOptimizerScalesFromPhysicalShift()
+        start = sitk.Euler3DTransform()
+        start.SetCenter(center)
+        current: sitk.Transform = start
+        for level, (shrink, sigma, fraction) in enumerate(
+            zip(settings.shrink_factors, settings.smoothing_sigmas_mm, fractions, strict=True)
+        ):
+            fixed_level = check_fixed if level == check else _shrunk(levels[level], shrink)
+            moving_level = check_moving if level == check else _smoothed(moving_f, sigma)
+            reg = _registration_method(settings, fraction, settings.learning_rate / shrink)
             reg.SetInitialTransform(current, inPlace=False)
             result = reg.Execute(fixed_level, moving_level)
             step = sitk.Euler3DTransform()
@@ -374,13 +482,10 @@ def register_rigid(
                 f"rigid registration failed ({reason}); the scanner's frame of reference was kept",
             ),
         )
-    finally:
-        sitk.ProcessObject.SetGlobalDefaultNumberOfThreads(previous_threads)
-    result = current
 
     final = sitk.Euler3DTransform()
     final.SetCenter(center)
-    final.SetParameters(result.GetParameters())
+    final.SetParameters(current.GetParameters())
     matrix = np.asarray(final.GetMatrix(), dtype=np.float64).reshape(3, 3)
     translation = tuple(float(v) for v in final.GetTranslation())
     rotation = _rotation_angle_deg(matrix)
@@ -420,3 +525,155 @@ def register_rigid(
         center_mm=tuple(float(v) for v in final.GetCenter()),  # type: ignore[arg-type]
         matrix=tuple(float(v) for v in final.GetMatrix()),
     )
+
+
+_GLOBAL_THREADS_LOCK = threading.Lock()
+_GLOBAL_THREADS_USERS = 0
+_GLOBAL_THREADS_SAVED = 0
+
+
+@contextmanager
+def _one_itk_thread() -> Iterator[None]:
+    """ITK's global default thread count at 1 while any registration runs (restored after the
+    last one ends, also when several callers overlap)."""
+    global _GLOBAL_THREADS_USERS, _GLOBAL_THREADS_SAVED
+    with _GLOBAL_THREADS_LOCK:
+        if _GLOBAL_THREADS_USERS == 0:
+            _GLOBAL_THREADS_SAVED = sitk.ProcessObject.GetGlobalDefaultNumberOfThreads()
+            sitk.ProcessObject.SetGlobalDefaultNumberOfThreads(_THREADS)
+        _GLOBAL_THREADS_USERS += 1
+    try:
+        yield
+    finally:
+        with _GLOBAL_THREADS_LOCK:
+            _GLOBAL_THREADS_USERS -= 1
+            if _GLOBAL_THREADS_USERS == 0:
+                sitk.ProcessObject.SetGlobalDefaultNumberOfThreads(_GLOBAL_THREADS_SAVED)
+
+
+_Key = TypeVar("_Key", bound=Hashable)
+
+_OUTSIDE_ANCHOR = Alignment(
+    method="identity",
+    warnings=(
+        "rigid registration skipped: the ROIs' neighbourhood is outside the anchor "
+        "series; the scanner's frame of reference was kept",
+    ),
+)
+
+
+def register_series(
+    fixed: sitk.Image,
+    movings: Mapping[_Key, sitk.Image],
+    *,
+    box_mm: tuple[np.ndarray, np.ndarray] | None = None,
+    site_lexicon: Path | None = None,
+    settings: AlignmentSettings | None = None,
+    max_workers: int | None = None,
+) -> dict[_Key, Alignment]:
+    """Align every series of ``movings`` to the anchor ``fixed``, sharing the anchor's work.
+
+    The anchor is cropped to ``box_mm`` plus the lexicon's margin and its smoothed pyramid is
+    built once; each series is checked for being already aligned (the optimizer is then
+    skipped and the alignment's ``notes`` say so), else registered as :func:`register_rigid`
+    describes. Series run in parallel threads, each on one ITK thread, so the result is the
+    same whatever the number of workers.
+
+    Parameters
+    ----------
+    fixed : SimpleITK.Image
+        The anchor series.
+    movings : Mapping
+        Key (e.g. the series' role) -> the series' image.
+    box_mm, site_lexicon
+        As for :func:`register_rigid`.
+    settings : AlignmentSettings, optional
+        Registration settings; None reads ``alignment.toml`` (the site's copy first).
+    max_workers : int, optional
+        Parallel registrations; None: the machine's core count (at most the number of series).
+
+    Returns
+    -------
+    dict
+        Key -> :class:`sigreport.model.Alignment`, in the order of ``movings``.
+    """
+    _check_image("fixed", fixed)
+    for image in movings.values():
+        _check_image("moving", image)
+    box = _check_box(box_mm)
+    if settings is None:
+        settings = load_settings(site_lexicon)
+    if not movings:
+        return {}
+    workers = max_workers if max_workers is not None else (os.cpu_count() or 1)
+    workers = max(1, min(int(workers), len(movings)))
+    anchor = _anchor_pyramid(fixed, box, settings, threads=os.cpu_count() or 1)
+    if anchor is None:
+        return {key: _OUTSIDE_ANCHOR for key in movings}
+    # Some of ITK's registration components take their thread count from the global default,
+    # not from the registration method: one thread for all of them while the series run.
+    with _one_itk_thread():
+        if workers == 1:
+            return {
+                key: _register_prepared(anchor, image, settings) for key, image in movings.items()
+            }
+        with ThreadPoolExecutor(max_workers=workers) as pool:
+            futures = {
+                key: pool.submit(_register_prepared, anchor, image, settings)
+                for key, image in movings.items()
+            }
+            return {key: future.result() for key, future in futures.items()}
+
+
+def register_rigid(
+    fixed: sitk.Image,
+    moving: sitk.Image,
+    *,
+    box_mm: tuple[np.ndarray, np.ndarray] | None = None,
+    site_lexicon: Path | None = None,
+    settings: AlignmentSettings | None = None,
+) -> Alignment:
+    """Align ``moving`` (a series) to ``fixed`` (the anchor) by a rigid transform.
+
+    Parameters
+    ----------
+    fixed : SimpleITK.Image
+        The anchor series.
+    moving : SimpleITK.Image
+        Another series of the same patient.
+    box_mm : (numpy.ndarray, numpy.ndarray), optional
+        ``(lo, hi)`` LPS box of the region to align on, e.g. the union of the ROIs'
+        ``bounds_mm()``; ``margin_mm`` of ``alignment.toml`` is added on every side. None: the
+        whole anchor.
+    site_lexicon : pathlib.Path, optional
+        A site lexicon folder whose ``alignment.toml`` replaces the bundled one.
+    settings : AlignmentSettings, optional
+        Registration settings; None reads ``alignment.toml`` (``site_lexicon`` first).
+
+    Returns
+    -------
+    sigreport.model.Alignment
+        ``method="rigid"``; ``transform`` (a ``SimpleITK.Euler3DTransform`` centred on the box)
+        maps anchor points to this series' points; ``translation_mm`` is how far the box centre
+        moved, ``rotation_deg`` the total rotation angle, ``metric`` the final Mattes mutual
+        information (negated by ITK: lower is better). ``warnings`` name a large motion, a poor
+        final metric or an optimizer that hit its iteration cap; ``notes`` say when the series
+        was found already aligned and the optimizer skipped (identity transform). When
+        registration cannot run (no overlap), the result is ``method="identity"`` with a
+        warning saying so.
+
+    Raises
+    ------
+    ValueError
+        When the images are not 3D, or ``box_mm`` is not two 3-vectors with lo <= hi.
+    sigreport.errors.InputError
+        When the lexicon's ``alignment.toml`` is invalid.
+    """
+    return register_series(
+        fixed,
+        {0: moving},
+        box_mm=box_mm,
+        site_lexicon=site_lexicon,
+        settings=settings,
+        max_workers=1,
+    )[0]

@@ -9,6 +9,7 @@ from pathlib import Path
 
 from sigreport.errors import InputError
 from sigreport.ingest.attributes import FrameRecord, SkipFile
+from sigreport.ingest.cache import HeaderCache
 from sigreport.ingest.dynamic import assign_dynamic_phases
 from sigreport.ingest.header import read_frames
 from sigreport.ingest.roles import (
@@ -35,6 +36,8 @@ def index_study(
     progress: Progress | None = None,
     site_lexicon: Path | None = None,
     bands: RoleBands | None = None,
+    use_cache: bool = True,
+    cache_dir: Path | None = None,
 ) -> StudyIndex:
     """Index every DICOM file under ``study_dir`` (recursively, any file names).
 
@@ -54,6 +57,10 @@ def index_study(
         ``bands`` is not given.
     bands
         The role bands of the run's lexicon (``Lexicon.role_bands``).
+    use_cache, cache_dir
+        Reuse (and update) the header index cache of this folder (``sigreport.ingest.cache``:
+        files whose size and modification time are unchanged are not read again); the cache
+        folder defaults to the user's cache directory.
 
     Raises
     ------
@@ -71,15 +78,17 @@ def index_study(
     records: list[FrameRecord] = []
     skipped: list[SkippedFile] = []
     total = len(files)
+    cache = HeaderCache(study_dir, directory=cache_dir, enabled=use_cache)
     for done, path in enumerate(files, start=1):
         try:
-            records.extend(read_frames(path))
+            records.extend(cache.read_frames(path, read_frames))
         except SkipFile as exc:
             skipped.append(SkippedFile(path=path, reason=str(exc)))
         except RecursionError:
             skipped.append(SkippedFile(path=path, reason="not readable: nesting too deep"))
         if progress is not None:
             progress("indexing files", done, total)
+    cache.save()
     return index_records(study_dir, records, skipped, bands=bands)
 
 

@@ -44,19 +44,17 @@ def build_key_slices(
             sample = samples[(spec.id, role)]
             if sample.n_voxels == 0:
                 continue
-            weights = np.where(sample.mask, sample.weights, 0.0)
+            # Within the sample's box (it is kept to the ROI's box).
+            weights = np.where(sample.box_mask, sample.box_weights, 0.0)
             per_slice = weights.sum(axis=(1, 2))
             # The weighted centre along the stack, snapped to a slice that holds ROI voxels.
             centre = float(np.dot(np.arange(per_slice.size), per_slice) / per_slice.sum())
             holding = np.flatnonzero(per_slice > 0)
-            z = int(holding[np.argmin(np.abs(holding - centre))])
+            z = int(holding[np.argmin(np.abs(holding - centre))]) + sample.offset[0]
             array = sitk.GetArrayViewFromImage(images[role])
             reference = samples.get((spec.reference, role)) if spec.reference else None
-            ref_mask = (
-                reference.mask[z].copy()
-                if reference is not None and reference.mask[z].any()
-                else None
-            )
+            ref_slice = reference.slice_mask(z) if reference is not None else None
+            ref_mask = ref_slice if ref_slice is not None and ref_slice.any() else None
             spacing = images[role].GetSpacing()
             stack = measured[role]
             slices.append(
@@ -64,7 +62,7 @@ def build_key_slices(
                     roi_id=spec.id,
                     role=role,
                     image=np.array(array[z], dtype=np.float32),
-                    lesion_mask=sample.mask[z].copy(),
+                    lesion_mask=sample.slice_mask(z),
                     reference_mask=ref_mask,
                     pixel_spacing_mm=(float(spacing[1]), float(spacing[0])),
                     slice_index=z,

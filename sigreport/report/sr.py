@@ -179,15 +179,23 @@ def build_sr(
             model_name=str((findings.get("tool") or {}).get("version", "")) or None,
         ),
     )
+    context = hd.sr.ObservationContext(observer_device_context=device)
+    # The image library (TID 1600) describes each image by its top-level geometry; an Enhanced
+    # MR multi-frame file keeps that in functional groups, which highdicom's library entry does
+    # not read, so multi-frame sources are referenced by the measurements only. One entry per
+    # series (its first key slice): the descriptors (modality, frame of reference, spacing,
+    # orientation) are the series'; the library's entries are optional (TID 1600/1601: 1-n, U)
+    # and one per key slice made them most of the document's size and writing time.
+    per_series: dict[str, Dataset] = {}
+    for ds in sources.datasets.values():
+        if "PixelSpacing" in ds:
+            per_series.setdefault(str(ds.SeriesInstanceUID), ds)
+    library = list(per_series.values()) or None
     report = hd.sr.MeasurementReport(
-        observation_context=hd.sr.ObservationContext(observer_device_context=device),
+        observation_context=context,
         procedure_reported=codes.cid100.MultiparametricMRI,
         imaging_measurements=groups,
-        # The image library (TID 1600) describes each image by its top-level geometry; an
-        # Enhanced MR multi-frame file keeps that in functional groups, which highdicom's
-        # library entry does not read, so multi-frame sources are referenced by the
-        # measurements only.
-        referenced_images=[ds for ds in sources.datasets.values() if "PixelSpacing" in ds] or None,
+        referenced_images=library,
     )
     # The cautions (and the warnings of the run) travel with the numbers: TEXT comments on the
     # report's root container (TID 1500 is extensible).
@@ -208,9 +216,25 @@ def build_sr(
                 )
             )
     evidence = list(sources.datasets.values())
+    # highdicom's document constructor deep-copies and re-parses the whole content tree and
+    # walks it for references (measured: three quarters of the SR's time on the demo, for a
+    # tree highdicom's template classes just built). The document is built around the same
+    # template without measurements (highdicom groups the evidence and fills every module),
+    # with one empty group (highdicom requires one), then the full tree is attached as the constructor itself does (the root container's
+    # attributes on the dataset). Every image the tree references is a key slice in
+    # ``evidence`` by construction; checked here because the constructor no longer does.
+    skeleton = hd.sr.MeasurementReport(
+        observation_context=context,
+        procedure_reported=codes.cid100.MultiparametricMRI,
+        imaging_measurements=[
+            hd.sr.MeasurementsAndQualitativeEvaluations(
+                tracking_identifier=hd.sr.TrackingIdentifier(identifier="placeholder")
+            )
+        ],
+    )
     sr = hd.sr.Comprehensive3DSR(
         evidence=evidence,
-        content=report,
+        content=skeleton,
         series_instance_uid=hd.UID(),
         series_number=series_number,
         sop_instance_uid=hd.UID(),
@@ -220,6 +244,14 @@ def build_sr(
         is_final=False,
         is_verified=False,
     )
+    referenced = {ref.sop_instance_uid for ref in key_refs.values()}
+    referenced.update(ds.SOPInstanceUID for ds in library or [])
+    missing = referenced - set(sources.datasets)
+    if missing:  # pragma: no cover - a bug, not an input problem
+        raise RuntimeError(f"SR references instances missing from its evidence: {sorted(missing)}")
+    for tag, value in root.items():
+        sr[tag] = value
+    sr._content = hd.sr.ContentSequence([root], is_root=True)  # type: ignore[list-item]
     sr.SeriesDescription = SR_SERIES_DESCRIPTION
     scheme = Dataset()
     scheme.CodingSchemeDesignator = PRIVATE_SCHEME
@@ -273,6 +305,10 @@ def _lesion_group(
                 )
             )
         method = role_method(role)
+        # The statistics name their series by the method and share the group's source images
+        # (the key slices); only the ratio, the value the grade is read from, references its
+        # key slice itself (TID 300 row 8, TID 320, optional): one reference per lesion and
+        # series instead of six keeps the document small and quick to write.
         for stat, derivation in DERIVATIONS.items():
             if stats.get(stat) is None:
                 continue
@@ -283,7 +319,6 @@ def _lesion_group(
                     unit=UNIT_NONE,
                     derivation=derivation,
                     method=method,
-                    referenced_images=images,
                 )
             )
         if stats.get("ratio") is not None:

@@ -39,24 +39,80 @@ _CHUNK_POINTS = 1_000_000
 
 @dataclass(frozen=True, eq=False)
 class RoiSample:
-    """An ROI on one series' voxel grid.
+    """An ROI on one series' voxel grid, kept to its box.
+
+    Only the box of voxels that can hold the ROI is stored (an ROI of a few millilitres on a
+    1 mm head series is a few thousand voxels of a ten-million-voxel grid); ``mask`` and
+    ``weights`` expand it to the whole grid on demand.
 
     Attributes
     ----------
     roi_id : str
-    mask : numpy.ndarray
-        bool ``(z, y, x)``: True where the voxel centre is inside the region.
-    weights : numpy.ndarray
-        float32 ``(z, y, x)``: partial-volume fraction in [0, 1]; > 0 wherever ``mask`` is
-        True (at least one sub-sample's worth there), possibly > 0 at edge voxels outside it.
+    box_mask : numpy.ndarray
+        bool ``(z, y, x)`` over the box: True where the voxel centre is inside the region.
+    box_weights : numpy.ndarray
+        float32, the box's shape: partial-volume fraction in [0, 1]; > 0 wherever
+        ``box_mask`` is True (at least one sub-sample's worth there), possibly > 0 at edge
+        voxels outside it.
     n_voxels : int
-        ``mask.sum()``.
+        ``box_mask.sum()``.
+    offset : tuple of int
+        ``(z, y, x)`` index of the box's first voxel in the series' grid.
+    grid_shape : tuple of int
+        ``(z, y, x)`` shape of the series' whole grid.
     """
 
     roi_id: str
-    mask: np.ndarray
-    weights: np.ndarray
+    box_mask: np.ndarray
+    box_weights: np.ndarray
     n_voxels: int
+    offset: tuple[int, int, int] = (0, 0, 0)
+    grid_shape: tuple[int, int, int] = (0, 0, 0)
+
+    @property
+    def box(self) -> tuple[slice, slice, slice]:
+        """Slices of the series' ``(z, y, x)`` array covered by the box."""
+        return tuple(  # type: ignore[return-value]
+            slice(o, o + n) for o, n in zip(self.offset, self.box_mask.shape, strict=True)
+        )
+
+    @property
+    def mask(self) -> np.ndarray:
+        """The membership over the whole grid (allocated on each call)."""
+        full = np.zeros(self.grid_shape, dtype=bool)
+        full[self.box] = self.box_mask
+        return full
+
+    @property
+    def weights(self) -> np.ndarray:
+        """The weights over the whole grid (allocated on each call)."""
+        full = np.zeros(self.grid_shape, dtype=np.float32)
+        full[self.box] = self.box_weights
+        return full
+
+    def slice_mask(self, z: int) -> np.ndarray:
+        """The membership on slice ``z`` of the grid, ``(y, x)``, whole slice."""
+        full = np.zeros(self.grid_shape[1:], dtype=bool)
+        local = z - self.offset[0]
+        if 0 <= local < self.box_mask.shape[0]:
+            full[self.box[1:]] = self.box_mask[local]
+        return full
+
+    def overlap(self, other: RoiSample) -> int:
+        """Voxels inside both samples (both on the same grid)."""
+        lo = np.maximum(self.offset, other.offset)
+        hi = np.minimum(
+            np.add(self.offset, self.box_mask.shape), np.add(other.offset, other.box_mask.shape)
+        )
+        if np.any(hi <= lo):
+            return 0
+        mine = self.box_mask[
+            tuple(slice(a - o, b - o) for a, b, o in zip(lo, hi, self.offset, strict=True))
+        ]
+        theirs = other.box_mask[
+            tuple(slice(a - o, b - o) for a, b, o in zip(lo, hi, other.offset, strict=True))
+        ]
+        return int(np.count_nonzero(mine & theirs))
 
 
 def _geometry(image: sitk.Image) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
@@ -179,8 +235,8 @@ def sample_region(
     Returns
     -------
     RoiSample
-        Membership by voxel centre, weights from supersampling. Only voxels inside the region's
-        bounding box (mapped onto this grid) are evaluated; the rest are outside.
+        Membership by voxel centre, weights from supersampling, kept to the region's bounding
+        box mapped onto this grid (the rest of the grid is outside).
     """
     origin, spacing, direction, size = _geometry(image)
     if supersample is None:
@@ -193,12 +249,15 @@ def sample_region(
         factors = np.array([supersample] * 3, dtype=np.int64)
 
     shape_zyx = (int(size[2]), int(size[1]), int(size[0]))
-    mask = np.zeros(shape_zyx, dtype=bool)
-    weights = np.zeros(shape_zyx, dtype=np.float32)
     box = _index_box(region, image, to_region_space)
     if box is None:
-        return RoiSample(region.id, mask, weights, 0)
+        empty = np.zeros((0, 0, 0), dtype=bool)
+        return RoiSample(region.id, empty, empty.astype(np.float32), 0, (0, 0, 0), shape_zyx)
     first, last = box
+    offset = (int(first[2]), int(first[1]), int(first[0]))
+    box_shape = tuple(int(v) for v in (last - first + 1)[::-1])
+    mask = np.zeros(box_shape, dtype=bool)
+    weights = np.zeros(box_shape, dtype=np.float32)
 
     affine = None
     if to_region_space is not None:
@@ -230,20 +289,16 @@ def sample_region(
         w = values.reshape(-1, n_sub).mean(axis=1)
         w = np.where(inside & (w <= 0.0), 1.0 / n_sub, w)
         cube = (len(zs), len(ys), len(xs))
-        sl = (
-            slice(int(zs[0]), int(zs[-1]) + 1),
-            slice(int(first[1]), int(last[1]) + 1),
-            slice(int(first[0]), int(last[0]) + 1),
-        )
+        sl = slice(int(zs[0]) - offset[0], int(zs[-1]) + 1 - offset[0])
         mask[sl] = inside.reshape(cube)
         weights[sl] = np.clip(w, 0.0, 1.0).reshape(cube).astype(np.float32)
-    return RoiSample(region.id, mask, weights, int(mask.sum()))
+    return RoiSample(region.id, mask, weights, int(mask.sum()), offset, shape_zyx)
 
 
 def volume_ml(sample: RoiSample, image: sitk.Image) -> float:
     """ROI volume in millilitres: ``sum(weights) * voxel volume`` (1 ml = 1000 mm^3)."""
     _, spacing, _, _ = _geometry(image)
-    return float(np.sum(sample.weights, dtype=np.float64) * float(np.prod(spacing)) / 1000.0)
+    return float(np.sum(sample.box_weights, dtype=np.float64) * float(np.prod(spacing)) / 1000.0)
 
 
 def _boundary(mask: np.ndarray) -> np.ndarray:
@@ -279,8 +334,8 @@ def max_diameter_mm(sample: RoiSample, image: sitk.Image, *, max_exact_points: i
     _, spacing, direction, _ = _geometry(image)
     if sample.n_voxels == 0:
         return 0.0
-    edge = _boundary(sample.mask)
-    zyx = np.argwhere(edge)
+    edge = _boundary(sample.box_mask)
+    zyx = np.argwhere(edge) + np.asarray(sample.offset)
     points = voxel_centres_mm(image, zyx[:, ::-1].astype(np.float64))
     if len(points) > max_exact_points:
         dirs = _fibonacci_directions(2000)

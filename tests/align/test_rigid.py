@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 import SimpleITK as sitk
 
-from sigreport.align import identity_alignment, load_settings, register_rigid
+from sigreport.align import identity_alignment, load_settings, register_rigid, register_series
 from sigreport.errors import InputError
 from sigreport.lexicon import bundled_dir
 
@@ -185,3 +185,53 @@ def test_site_lexicon_thresholds_apply_and_are_validated(images, tmp_path: Path)
         InputError, match=r"alignment\.toml \[registration\]: unknown key\(s\) margn_mm"
     ):
         load_settings(tmp_path)
+
+
+# --------------------------------------------------------------------------------------------
+# Several series at once (register_series): shared anchor pyramid, skip check, threads
+
+
+def test_motion_free_pair_skips_the_optimizer_and_says_so(images):
+    t1, _ = images
+    # The same contrast with its own noise (a repeat acquisition that did not move).
+    repeat = sitk.AdditiveGaussianNoise(t1, standardDeviation=0.02, mean=0.0, seed=3)
+    found = register_rigid(t1, repeat, box_mm=BOX)
+    assert found.method == "rigid" and found.rotation_deg == 0.0
+    assert found.translation_mm == (0.0, 0.0, 0.0)
+    assert found.notes and "optimizer was skipped" in found.notes[0]
+
+
+@pytest.mark.parametrize("shift_mm", [0.6, 1.0])
+def test_small_motion_above_the_tolerance_is_still_registered(images, shift_mm):
+    t1, t2 = images
+    a = motion(0.0, 0.0, 0.0, (shift_mm, 0.0, 0.0))
+    moving = sitk.Resample(t2, t1, a, sitk.sitkLinear, 0.0)
+    found = register_rigid(t1, moving, box_mm=BOX)
+    assert found.notes == ()  # the check sees the motion: the optimizer ran
+    assert max_point_error(found.transform, a.GetInverse()) < TOL_MM
+
+
+def test_register_series_matches_one_by_one_and_does_not_depend_on_threads(images):
+    t1, t2 = images
+    movings = {
+        "moved": sitk.Resample(t2, t1, motion(2.0, 0.0, -1.0, (1.5, -1.0, 0.5)), sitk.sitkLinear),
+        "still": t2,
+        "rotated": sitk.Resample(t1, t1, motion(0.0, 3.0, 0.0, (0.0, 0.0, 0.0)), sitk.sitkLinear),
+    }
+    one_thread = register_series(t1, movings, box_mm=BOX, max_workers=1)
+    two_threads = register_series(t1, movings, box_mm=BOX, max_workers=2)
+    assert list(two_threads) == list(movings)
+    for key, image in movings.items():
+        single = register_rigid(t1, image, box_mm=BOX)
+        for found in (one_thread[key], two_threads[key]):
+            assert found.transform.GetParameters() == single.transform.GetParameters()
+            assert found.metric == single.metric and found.notes == single.notes
+
+
+def test_register_series_outside_the_anchor_keeps_every_frame(images):
+    t1, t2 = images
+    far = (np.array([500.0, 500, 500]), np.array([510.0, 510, 510]))
+    found = register_series(t1, {"a": t1, "b": t2}, box_mm=far)
+    assert all(
+        a.method == "identity" and "outside the anchor" in a.warnings[0] for a in found.values()
+    )

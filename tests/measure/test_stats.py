@@ -186,3 +186,22 @@ def test_measure_roi_leaves_out_voxels_outside_the_field_of_view():
     got = measure_roi(values, mask, None, (1, 1, 1), lesion=False, min_voxels=20)
     assert got.stats.n_voxels == 180 and got.stats.median == 5.0
     assert "36 voxels outside the field of view" in got.note
+
+
+@pytest.mark.parametrize("corner", [(2, 3, 4), (0, 0, 0), (9, 20, 30)])
+def test_shell_and_core_from_the_rois_box_equal_those_of_the_whole_array(corner):
+    # shell_core_masks computes depths only over the ROI's bounding box; the oracle is the
+    # depth over the whole array (SimpleITK's distance map on all of it), thresholded the same.
+    rng = np.random.default_rng(sum(corner))
+    mask = np.zeros((14, 32, 40), dtype=bool)
+    z, y, x = np.ogrid[:5, :12, :10]
+    blob = (z - 2) ** 2 / 6.0 + (y - 5.5) ** 2 / 30.0 + (x - 4.5) ** 2 / 20.0 <= 1.0
+    blob &= rng.random(blob.shape) > 0.05
+    mask[corner[0] : corner[0] + 5, corner[1] : corner[1] + 12, corner[2] : corner[2] + 10] = blob
+    spacing = (0.9, 0.9, 3.0)
+    depth = inner_depth_mm(mask, spacing)
+    thickness = max(depth[mask].max() / 3.0, min(spacing))
+    want_shell = mask & (depth <= thickness * (1.0 + 1e-9))
+    shell, core = shell_core_masks(mask, spacing, shell_fraction=1.0 / 3.0)
+    assert np.array_equal(shell, want_shell)
+    assert np.array_equal(core, mask & ~want_shell)

@@ -91,6 +91,7 @@ def test_demo_builds_a_study_and_writes_the_whole_report(tmp_path: Path):
     assert again.exit_code == 0, again.output
     rerun = json.loads((out / "report" / "findings.json").read_text())
     assert rerun["lesions"] == findings["lesions"]
+    assert rerun["series"] == findings["series"]  # the alignments too (parallel registration)
 
 
 def test_report_refuses_an_existing_outdir_and_keeps_it(tmp_path: Path):

@@ -208,3 +208,29 @@ def test_enhanced_multiframe_with_useless_descriptions_reads_the_same(tmp_path):
         assert roles[series["series_number"]] == role
     _check_ratios(findings, truth)
     _check_flags(findings, truth)
+
+
+def test_motion_free_series_keep_the_scanners_alignment(tmp_path):
+    # Without simulated motion the truth is the identity: series the cheap check finds aligned
+    # skip the optimizer (and qc says so), the others must still come out within 0.5 mm.
+    findings, truth, study = _run(tmp_path, "neuro", motion=False)
+    case = tomllib.loads(study.case_path.read_text())
+    centres = np.array([roi["center_mm"] for roi in case["roi"]])
+    skipped = {
+        q["message"].split(":")[0] for q in findings["qc"] if q["code"] == "registration-skipped"
+    }
+    assert skipped, "no series was found already aligned"
+    for series in findings["series"]:
+        if not series.get("measured") or series.get("anchor"):
+            continue
+        alignment = series["alignment"]
+        got = _rigid(
+            centres,
+            np.reshape(alignment["matrix"], (3, 3)),
+            alignment["center_mm"],
+            alignment["translation_mm"],
+        )
+        assert np.linalg.norm(got - centres, axis=1).max() < 0.5, series["role"]
+        if series["role"] in skipped:
+            assert alignment["translation_mm"] == [0.0, 0.0, 0.0]
+            assert alignment["rotation_deg"] == 0.0

@@ -140,8 +140,8 @@ def test_flags_are_coded(groups):
 
 def test_measurements_reference_their_source_images(sr, groups, study):
     measurements = groups["L1"][1]
-    mean = _value(measurements, codes.DCM.MRSignalIntensity, role_method("T2"), codes.cid7464.Mean)
-    [ref] = mean.referenced_images
+    ratio = _value(measurements, codes.SCT.Ratio, role_method("T2"), codes.cid7464.Median)
+    [ref] = ratio.referenced_images
     assert ref.referenced_sop_instance_uid == study["T2"].instances[1].sop_instance_uid
     evidence = {
         item.ReferencedSOPInstanceUID
@@ -162,3 +162,48 @@ def test_cautions_travel_with_the_sr(sr, findings):
 def test_sr_without_any_source_instance_is_refused(findings):
     with pytest.raises(ValueError, match='Argument "stacks" holds no source instance'):
         build_sr(findings, [], {})
+
+
+def test_the_document_content_view_is_the_whole_tree(findings, study, key_slices):
+    # build_sr attaches the content tree without highdicom's deep copy: highdicom's content
+    # view of the new document must be the same full tree as its dataset (a group per lesion,
+    # not the placeholder the document was built around).
+    document = build_sr(findings, key_slices, study)
+    root = document.content[0]
+    assert root.ContentSequence is document.ContentSequence
+    imaging = [
+        item
+        for item in document.ContentSequence
+        if item.ValueType == "CONTAINER"
+        and item.ConceptNameCodeSequence[0].CodeValue == "126010"  # Imaging Measurements, PS3.16
+    ]
+    [measurements] = imaging
+    ids = [
+        item.TextValue
+        for group in measurements.ContentSequence
+        for item in group.ContentSequence
+        if item.ValueType == "TEXT" and item.ConceptNameCodeSequence[0].CodeValue == "112039"
+    ]
+    assert len(ids) == len(findings["lesions"]) and "placeholder" not in ids
+
+
+def test_image_library_describes_each_series_once(sr, study):
+    # TID 1600: Image Library > Image Library Group > image entries (PS3.16); one per series.
+    [library] = [
+        item
+        for item in sr.ContentSequence
+        if item.ValueType == "CONTAINER"
+        and item.ConceptNameCodeSequence[0].CodeValue == "111028"  # Image Library, PS3.16
+    ]
+    entries = [
+        entry.ReferencedSOPSequence[0].ReferencedSOPInstanceUID
+        for group in library.ContentSequence
+        for entry in group.ContentSequence
+        if entry.ValueType == "IMAGE"
+    ]
+    series_of = {
+        i.sop_instance_uid: s.series_instance_uid for s in study.values() for i in s.instances
+    }
+    assert len(entries) == len(set(entries))
+    assert sorted(series_of[uid] for uid in entries) == sorted({series_of[uid] for uid in entries})
+    assert len(entries) == len(study)

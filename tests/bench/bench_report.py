@@ -1,0 +1,179 @@
+"""Benchmark: the whole report against reading the study, side by side in one process.
+
+Not run by CI. Usage: ``PYTHONPATH=tests python tests/bench/bench_report.py [repeats]``.
+Builds the neuro demo and an 8-series variant (its localizer replaced by a measured oblique PD
+series; a 3D 1 mm anchor, 2D axial, oblique, coronal and sagittal series, motion on all but the
+anchor) in a temporary folder, then prints, per run, each figure with its goal
+(docs/performance.md):
+
+- whole ``report`` on the demo vs index + load of the measured series (<= 15x; <= 8 s wall);
+- peak memory of ``sigreport report`` on the demo (a child process's ru_maxrss; <= 400 MB);
+- whole ``report`` on the 8-series study vs its index + load (<= 20x);
+- sr.dcm: building and writing it, within the demo report (<= 1 s);
+- a repeat index (header cache) vs a raw read of every file's bytes (<= 5x).
+
+Ratios are taken within one process, one right after the other, so that the machine's load
+(other processes on a shared machine) affects both sides alike; run it several times and quote
+the range.
+"""
+
+from __future__ import annotations
+
+import os
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import sigreport.report.writer as writer
+from sigreport.ingest import index_study, load_stack
+from sigreport.pipeline import apply_role_overrides, choose_measured, run_report
+from sigreport.rois import load_case
+from sigreport.synth import demo_scenarios, generate_study
+
+GOALS = {
+    "demo": 15.0,
+    "demo_wall_s": 8.0,
+    "peak_mb": 400.0,
+    "eight": 20.0,
+    "sr_s": 1.0,
+    "cache": 5.0,
+}
+
+
+def _eight_series_scenario(folder: Path) -> Path:
+    """The neuro scenario with its localizer replaced by a measured 2D oblique PD series."""
+    text = demo_scenarios()["neuro"].read_text()
+    start = text.index('[[series]]\nrole = "UNKNOWN"')
+    end = text.index("[[series]]", start + 10)
+    pd = """[[series]]
+role = "PD"
+number = 1
+description = "AX OBL PD TSE"
+sequence = "TSE"
+acquisition = "2D"
+orientation = "axial"
+tilt_deg = -8.0
+tr_ms = 3000.0
+te_ms = 15.0
+echo_train = 8
+pixel_mm = 1.0
+slice_mm = 5.0
+gap_mm = 1.0
+fov_mm = [180.0, 150.0, 80.0]
+snr = 30.0
+gain_group = "pd"
+
+"""
+    path = folder / "eight.toml"
+    path.write_text(text[:start] + pd + text[end:])
+    return path
+
+
+def _raw_read(study: Path) -> float:
+    start = time.perf_counter()
+    for path in sorted(p for p in study.rglob("*") if p.is_file()):
+        path.read_bytes()
+    return time.perf_counter() - start
+
+
+def _index_and_load(study: Path, case_path: Path) -> float:
+    start = time.perf_counter()
+    index = index_study(study, use_cache=False)
+    index, forced = apply_role_overrides(index, load_case(case_path).roles)
+    measured, _ = choose_measured(index, forced)
+    for stack in measured.values():
+        load_stack(stack)
+    return time.perf_counter() - start
+
+
+def _report(study: Path, case_path: Path, out: Path) -> float:
+    start = time.perf_counter()
+    run_report(case_path, out, study_dir=study, force=True, use_cache=False)
+    return time.perf_counter() - start
+
+
+def _peak_mb(study: Path, case_path: Path, out: Path) -> float:
+    """Peak resident memory of ``sigreport report`` in a child process (Linux: ru_maxrss KiB)."""
+    before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    subprocess.run(
+        [sys.executable, "-m", "sigreport", "report", str(study), "--case", str(case_path),
+         "--out", str(out), "--force", "--no-cache"],
+        check=True, capture_output=True,
+    )  # fmt: skip
+    after = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    return max(before, after) / 1024.0
+
+
+def _line(name: str, value: float, goal: float, unit: str = "x") -> str:
+    ok = "ok" if value <= goal else "OVER"
+    return f"  {name:<48} {value:8.2f}{unit:<3} goal <= {goal:g}{unit}  {ok}"
+
+
+def main() -> None:
+    repeats = int(sys.argv[1]) if len(sys.argv) > 1 else 1
+    cores = os.cpu_count()
+    with tempfile.TemporaryDirectory() as tmp:
+        root = Path(tmp)
+        os.environ["SIGREPORT_CACHE_DIR"] = str(root / "cache")
+        demo = generate_study("neuro", root / "demo")
+        eight = generate_study(_eight_series_scenario(root), root / "eight")
+        n_demo = sum(1 for p in demo.study_dir.rglob("*") if p.is_file())
+        n_eight = sum(1 for p in eight.study_dir.rglob("*") if p.is_file())
+        print(f"{cores} cores; demo {n_demo} files; 8-series study {n_eight} files")
+
+        sr_times: list[float] = []
+        build, write = writer.build_sr, writer.write_sr
+
+        def timed_build(*args, **kwargs):
+            start = time.perf_counter()
+            sr = build(*args, **kwargs)
+            sr_times.append(time.perf_counter() - start)
+            return sr
+
+        def timed_write(*args, **kwargs):
+            start = time.perf_counter()
+            write(*args, **kwargs)
+            sr_times[-1] += time.perf_counter() - start
+
+        writer.build_sr, writer.write_sr = timed_build, timed_write  # type: ignore[assignment]
+        # Warm up: imports, page cache.
+        _index_and_load(demo.study_dir, demo.case_path)
+        for run in range(1, repeats + 1):
+            print(f"run {run}")
+            base = _index_and_load(demo.study_dir, demo.case_path)
+            cpu = time.process_time()
+            whole = _report(demo.study_dir, demo.case_path, root / "out-demo")
+            cpu = time.process_time() - cpu
+            print(f"  demo: index+load {base:.2f} s, report {whole:.2f} s wall, {cpu:.2f} s CPU")
+            print(_line("demo report / (index + load)", whole / base, GOALS["demo"]))
+            print(_line("demo report wall", whole, GOALS["demo_wall_s"], " s"))
+            print(_line("sr.dcm build + write", sr_times[-1], GOALS["sr_s"], " s"))
+            size = (root / "out-demo" / "sr.dcm").stat().st_size / 1024
+            print(f"  sr.dcm size {size:.0f} KiB")
+            print(_line("demo report peak memory", _peak_mb(demo.study_dir, demo.case_path,
+                        root / "out-mem"), GOALS["peak_mb"], " MB"))  # fmt: skip
+
+            base8 = _index_and_load(eight.study_dir, eight.case_path)
+            cpu8 = time.process_time()
+            whole8 = _report(eight.study_dir, eight.case_path, root / "out-eight")
+            cpu8 = time.process_time() - cpu8
+            print(
+                f"  8-series: index+load {base8:.2f} s, report {whole8:.2f} s wall, "
+                f"{cpu8:.2f} s CPU"
+            )
+            print(_line("8-series report / (index + load)", whole8 / base8, GOALS["eight"]))
+
+            index_study(demo.study_dir)  # fills the header cache (if any)
+            raw = _raw_read(demo.study_dir)
+            start = time.perf_counter()
+            index_study(demo.study_dir)
+            cached = time.perf_counter() - start
+            print(f"  raw read {raw:.3f} s, cached index {cached:.3f} s")
+            print(_line("cached index / raw read", cached / raw, GOALS["cache"]))
+
+
+if __name__ == "__main__":
+    main()
