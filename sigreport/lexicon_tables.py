@@ -19,6 +19,7 @@ report's ratio plot shades the isointense band of the grade thresholds themselve
 
 from __future__ import annotations
 
+import dataclasses
 import string
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -61,6 +62,22 @@ _WORDING_SECTIONS: dict[str, set[str]] = {
     "qc": {"warning", "error", "info", "none"},
 }  # fmt: skip
 
+#: Keys added after site copies of wording.toml existed: a site copy may leave them out, and
+#: the bundled file's wording is used for them (a site copy without [formats] too).
+_WORDING_LATER: dict[str, set[str]] = {
+    "titles": {"references", "header"},
+    "sentences": {
+        "size_axes", "size_roi", "signal_unnormalized", "not_assessed_flow_void",
+        "enhancement_reference_changed", "behaviour_not_applied", "reference_line",
+        "control_line", "control_passed", "control_failed", "control_unchecked",
+    },
+    "formats": {"date", "not_assessed"},
+    "header": {
+        "patient_name", "patient_id", "birth_date", "sex", "accession", "study_date",
+        "series_used",
+    },
+}  # fmt: skip
+
 
 @dataclass(frozen=True)
 class Wording:
@@ -72,6 +89,10 @@ class Wording:
     sentences: dict[str, str]
     qc: dict[str, str]
     source: Path
+    formats: dict[str, str] = dataclasses.field(default_factory=dict)
+    header: dict[str, str] = dataclasses.field(
+        default_factory=dict
+    )  # labels of the reports' header block
 
     def role_name(self, role: str) -> str:
         """The running-text name of a role (the role string itself when unknown)."""
@@ -103,22 +124,30 @@ def load_wording(site: Path | str | None = None) -> Wording:
             f"{path}: [plot] is no longer read: the ratio plot shades the isointense band of "
             "thresholds.toml [grade] (hypo_max_ratio, hyper_min_ratio); remove [plot]"
         )
-    lexicon.check_keys(table, set(_WORDING_SECTIONS), str(path))
+    sections = set(_WORDING_SECTIONS) | set(_WORDING_LATER)
+    lexicon.check_keys(table, sections, str(path))
+    bundled = lexicon.bundled_dir() / WORDING_FILE
+    defaults = lexicon.read_table(WORDING_FILE, None) if path != bundled else table
     parsed: dict[str, dict[str, Any]] = {}
-    for section, keys in _WORDING_SECTIONS.items():
-        values = table.get(section)
+    for section in sorted(sections):
+        required = _WORDING_SECTIONS.get(section, set())
+        later = _WORDING_LATER.get(section, set())
+        values = table.get(section, {} if section not in _WORDING_SECTIONS else None)
         if not isinstance(values, dict):
             raise InputError(f"{path}: missing table [{section}]")
-        lexicon.check_keys(values, keys, f"{path} [{section}]")
-        missing = sorted(keys - set(values))
+        lexicon.check_keys(values, required | later, f"{path} [{section}]")
+        missing = sorted(required - set(values))
         if missing:
             raise InputError(f"{path} [{section}]: missing key(s) {', '.join(missing)}")
+        values = dict(values)
+        for key in later - set(values):
+            values[key] = (defaults.get(section) or {}).get(key)
         parsed[section] = values
-    for section in ("titles", "roles", "patterns", "sentences", "qc"):
+    for section in sorted(sections):
         for key, value in parsed[section].items():
             if not isinstance(value, str):
                 raise InputError(f"{path} [{section}] {key}: expected a string, got {value!r}")
-    for key, value in parsed["sentences"].items():
+    for key, value in [*parsed["sentences"].items(), *parsed["titles"].items()]:
         try:
             placeholders(value)
         except ValueError as exc:
@@ -130,6 +159,8 @@ def load_wording(site: Path | str | None = None) -> Wording:
         sentences=dict(parsed["sentences"]),
         qc=dict(parsed["qc"]),
         source=path,
+        formats=dict(parsed["formats"]),
+        header=dict(parsed["header"]),
     )
 
 
