@@ -7,7 +7,8 @@ gathers what each stage reads from them into one frozen :class:`Lexicon`:
     alignment.toml  -> alignment    (align: registration settings and its qc limits)
     thresholds.toml,
     tissues.toml,
-    behaviour.toml  -> rules        (measure: grades, qualifiers, pairs' thresholds, behaviour)
+    behaviour.toml,
+    grading.toml    -> rules        (measure: grades, qualifiers, pairs' thresholds, behaviour)
     wording.toml    -> wording      (report: titles, role names, sentences)
     cautions.toml   -> cautions     (report: the cautions every report carries)
     templates/      -> the report templates (the site's folder first)
@@ -67,7 +68,7 @@ _WORDING_SECTIONS: dict[str, set[str]] = {
 _WORDING_LATER: dict[str, set[str]] = {
     "titles": {"references", "header"},
     "sentences": {
-        "size_axes", "size_roi", "signal_unnormalized", "not_assessed_flow_void",
+        "size_axes", "size_roi", "signal_unnormalized", "signal_no_reference", "not_assessed_flow_void",
         "enhancement_reference_changed", "behaviour_not_applied", "reference_line",
         "control_line", "control_passed", "control_failed", "control_unchecked",
     },

@@ -381,9 +381,8 @@ class Alignment:
         }
         if self.metric is not None:
             out["metric"] = round(float(self.metric), 5)
-        out["displacement_mm"] = (
-            None if self.displacement_mm is None else round(float(self.displacement_mm), 3)
-        )
+        if self.displacement_mm is not None:
+            out["displacement_mm"] = round(float(self.displacement_mm), 3)
         if self.center_mm is not None and self.matrix is not None:
             out["center_mm"] = [round(float(v), 3) for v in self.center_mm]
             out["matrix"] = [round(float(v), 7) for v in self.matrix]

@@ -200,15 +200,18 @@ def lesion_sentences(
         out.append(
             fill(s["signal_unmeasured"], "signal_unmeasured", roles=wording.join(unmeasured))
         )
-    if unnormalized:
-        reference = str(lesion.get("reference") or tissue)
+    if unnormalized and lesion.get("reference"):
         out.append(
             fill(
                 s["signal_unnormalized"],
                 "signal_unnormalized",
                 roles=wording.join(unnormalized),
-                reference=reference,
+                reference=str(lesion["reference"]),
             )
+        )
+    elif unnormalized:
+        out.append(
+            fill(s["signal_no_reference"], "signal_no_reference", roles=wording.join(unnormalized))
         )
 
     flow_void = lesion.get("flow_void")
@@ -450,6 +453,14 @@ def report_context(
     ``findings`` (header values, case-file text, qc messages) is first made one line without
     control characters (:func:`sigreport.safetext.one_line`): a CR/LF in an AccessionNumber
     cannot add a line to report.txt, nor a NUL reach report.html.
+
+    The keys (docs/outputs.md lists their fields): ``titles``, ``header`` and ``header_lines``
+    (patient, ID, birth date, sex, accession, study date in the lexicon's date format, the
+    series used), ``references`` (reference and control ROIs: site, tissue, per-series medians,
+    control check), ``study``, ``tool``, ``generated``, ``cautions``, ``lesions`` (with
+    ``not_applied``: readings whose rule assumes another reference), ``rows``, ``text_table``,
+    ``qc``, ``qc_prominent``, ``qc_none``, ``series`` (with ``displacement_mm`` and
+    ``rotation_deg``) and ``series_text_table``.
     """
     findings = clean_strings(findings)
     rows = display_rows(findings, not_assessed=wording.formats.get("not_assessed", NOT_ASSESSED))

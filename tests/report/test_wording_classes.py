@@ -153,6 +153,14 @@ def test_a_failed_reference_is_blamed_not_the_lesion(rules, wording):
     assert "It could not be measured on T2" not in text
 
 
+def test_without_a_reference_the_text_says_so_and_names_no_roi(rules, wording):
+    lesion = Build.lesion({T1: 400.0, T2: 1800.0})
+    result = characterize(Build.study([lesion]), rules)
+    text = _text(result, wording)
+    assert "could not be graded on T1 and T2: the case file gives it no reference ROI" in text
+    assert "reference ROI the reference" not in text and not LEAKS.findall(text)
+
+
 def test_a_borderline_grade_is_said_and_fires_no_rule(rules, wording):
     # A fat lesion at T2 ratio 0.90: hypointense by the threshold, but at its edge.
     lesion = Build.lesion({T1: 1500.0, T1FS: 60.0, T2: 540.0})
