@@ -86,3 +86,17 @@ def test_an_override_contradicting_the_physics_is_a_qc_warning(written, tmp_path
     # An override agreeing with the physics leaves no warning.
     plan = _plan(_case(written, tmp_path, roles='T2 = "3"'), lexicon)
     assert not [n for n in plan.qc if n.code == "role-override-contradicts"]
+
+
+def test_the_command_exits_2_with_one_line_and_writes_nothing(written, tmp_path):
+    from typer.testing import CliRunner
+
+    from sigreport.cli import app
+
+    roi = '\n[[roi]]\nid = "L9"\nkind = "lesion"\nshape = "sphere"\ncenter_mm = [0.0, 0.0, 0.0]\nradius_mm = 500.0\n'
+    case = _case(written, tmp_path, roi=roi)
+    out = tmp_path / "out"
+    result = CliRunner().invoke(app, ["report", "--case", str(case), "--out", str(out)])
+    assert result.exit_code == 2
+    assert "ROI L9 is larger than the imaged anatomy" in result.output
+    assert "Traceback" not in result.output and not out.exists()

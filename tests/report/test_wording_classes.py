@@ -9,6 +9,7 @@ hand-made medians (builders.measured)."""
 
 from __future__ import annotations
 
+import html
 import itertools
 import re
 from typing import Any
@@ -18,6 +19,7 @@ import pytest
 from sigreport.measure import characterize, load_rules
 from sigreport.model import Acquisition, RoiKind, Role
 from sigreport.report.findings import lesion_phrases
+from sigreport.report.html import render_html
 from sigreport.report.text import display_rows, render_text, report_context
 from sigreport.report.wording import load_wording
 
@@ -98,10 +100,15 @@ def test_no_programming_value_or_entity_in_text_whatever_pairs_the_study_lacks(
     ref = Build.reference({r: REFERENCE[r] for r in roles})
     csf = Build.control("C1", "CSF", {r: REFERENCE[r] * 2 for r in roles})
     result = characterize(Build.study([lesion, unmeasured, ref, csf]), rules)
-    md, txt, _ = _render(result, wording)
+    md, txt, findings = _render(result, wording)
     for name, text in (("report.md", md), ("report.txt", txt)):
         found = LEAKS.findall(text)
         assert not found, f"{name} for {'+'.join(r.value for r in roles)}: {found}"
+    # The page's visible text (tags dropped, entities decoded as a browser does) neither.
+    context = report_context(findings, wording, lesion_phrases(result))
+    page = render_html(context, findings, {}, wording, iso_band=(0.9, 1.1))
+    visible = html.unescape(re.sub(r"<[^>]*>", " ", re.sub(r"(?s)<(style|svg).*?</\1>", "", page)))
+    assert not re.findall(r"\bNone\b|\bnan\b|\bnull\b|-0 %", visible)
 
 
 def test_markdown_writes_arrows_as_text_not_entities(rules, wording):
