@@ -7,7 +7,8 @@ gathers what each stage reads from them into one frozen :class:`Lexicon`:
     alignment.toml  -> alignment    (align: registration settings and its qc limits)
     thresholds.toml,
     tissues.toml,
-    behaviour.toml  -> rules        (measure: grades, qualifiers, pairs' thresholds, behaviour)
+    behaviour.toml,
+    grading.toml    -> rules        (measure: grades, qualifiers, pairs' thresholds, behaviour)
     wording.toml    -> wording      (report: titles, role names, sentences)
     cautions.toml   -> cautions     (report: the cautions every report carries)
     templates/      -> the report templates (the site's folder first)
@@ -19,6 +20,7 @@ report's ratio plot shades the isointense band of the grade thresholds themselve
 
 from __future__ import annotations
 
+import dataclasses
 import string
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -58,12 +60,29 @@ _WORDING_SECTIONS: dict[str, set[str]] = {
         "behaviour_no_considerations", "list_separator", "list_last_separator",
         "considerations_separator",
     },
+    "qc": {"warning", "error", "info", "none"},
+}  # fmt: skip
+
+#: Keys added after site copies of wording.toml existed: a site copy may leave them out, and
+#: the bundled file's wording is used for them (a site copy without [formats] too).
+_WORDING_LATER: dict[str, set[str]] = {
+    "titles": {"references", "header"},
+    "sentences": {
+        "size_axes", "size_roi", "signal_unnormalized", "signal_no_reference", "not_assessed_flow_void",
+        "enhancement_reference_changed", "behaviour_not_applied", "reference_line",
+        "control_line", "control_passed", "control_failed", "control_unchecked",
+    },
+    # Interval change against a prior study.
     "change": {
         "since", "since_nothing", "new", "interval", "interval_unknown", "date_unknown",
         "larger", "smaller", "same_volume", "newly_enhancing", "no_longer_enhancing",
         "enhancement", "ratio", "items_separator", "not_seen", "not_seen_lesion",
     },
-    "qc": {"warning", "error", "info", "none"},
+    "formats": {"date", "not_assessed"},
+    "header": {
+        "patient_name", "patient_id", "birth_date", "sex", "accession", "study_date",
+        "series_used",
+    },
 }  # fmt: skip
 
 
@@ -78,6 +97,10 @@ class Wording:
     qc: dict[str, str]
     change: dict[str, str]  # interval change against a prior study
     source: Path
+    formats: dict[str, str] = dataclasses.field(default_factory=dict)
+    header: dict[str, str] = dataclasses.field(
+        default_factory=dict
+    )  # labels of the reports' header block
 
     def role_name(self, role: str) -> str:
         """The running-text name of a role (the role string itself when unknown)."""
@@ -109,22 +132,34 @@ def load_wording(site: Path | str | None = None) -> Wording:
             f"{path}: [plot] is no longer read: the ratio plot shades the isointense band of "
             "thresholds.toml [grade] (hypo_max_ratio, hyper_min_ratio); remove [plot]"
         )
-    lexicon.check_keys(table, set(_WORDING_SECTIONS), str(path))
+    sections = set(_WORDING_SECTIONS) | set(_WORDING_LATER)
+    lexicon.check_keys(table, sections, str(path))
+    bundled = lexicon.bundled_dir() / WORDING_FILE
+    defaults = lexicon.read_table(WORDING_FILE, None) if path != bundled else table
     parsed: dict[str, dict[str, Any]] = {}
-    for section, keys in _WORDING_SECTIONS.items():
-        values = table.get(section)
+    for section in sorted(sections):
+        required = _WORDING_SECTIONS.get(section, set())
+        later = _WORDING_LATER.get(section, set())
+        values = table.get(section, {} if section not in _WORDING_SECTIONS else None)
         if not isinstance(values, dict):
             raise InputError(f"{path}: missing table [{section}]")
-        lexicon.check_keys(values, keys, f"{path} [{section}]")
-        missing = sorted(keys - set(values))
+        lexicon.check_keys(values, required | later, f"{path} [{section}]")
+        missing = sorted(required - set(values))
         if missing:
             raise InputError(f"{path} [{section}]: missing key(s) {', '.join(missing)}")
+        values = dict(values)
+        for key in later - set(values):
+            values[key] = (defaults.get(section) or {}).get(key)
         parsed[section] = values
-    for section in ("titles", "roles", "patterns", "sentences", "qc", "change"):
+    for section in sorted(sections):
         for key, value in parsed[section].items():
             if not isinstance(value, str):
                 raise InputError(f"{path} [{section}] {key}: expected a string, got {value!r}")
-    for key, value in [*parsed["sentences"].items(), *parsed["change"].items()]:
+    for key, value in [
+        *parsed["sentences"].items(),
+        *parsed["titles"].items(),
+        *parsed["change"].items(),
+    ]:
         try:
             placeholders(value)
         except ValueError as exc:
@@ -137,6 +172,8 @@ def load_wording(site: Path | str | None = None) -> Wording:
         qc=dict(parsed["qc"]),
         change=dict(parsed["change"]),
         source=path,
+        formats=dict(parsed["formats"]),
+        header=dict(parsed["header"]),
     )
 
 

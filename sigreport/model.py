@@ -395,6 +395,9 @@ class Alignment:
     # matrix (p - center_mm) + center_mm + translation_mm in this series.
     center_mm: tuple[float, float, float] | None = None
     matrix: tuple[float, ...] | None = None  # 3x3 row-major rotation
+    # Largest displacement of the corners of the ROIs' box under the transform (mm); None
+    # until the pipeline measures it (docs/findings.schema.json series[].alignment).
+    displacement_mm: float | None = None
 
     def to_json(self) -> dict[str, Any]:
         out: dict[str, Any] = {
@@ -404,6 +407,8 @@ class Alignment:
         }
         if self.metric is not None:
             out["metric"] = round(float(self.metric), 5)
+        if self.displacement_mm is not None:
+            out["displacement_mm"] = round(float(self.displacement_mm), 3)
         if self.center_mm is not None and self.matrix is not None:
             out["center_mm"] = [round(float(v), 3) for v in self.center_mm]
             out["matrix"] = [round(float(v), 7) for v in self.matrix]
@@ -449,10 +454,15 @@ class SeriesMeasurement:
 
 @dataclass(frozen=True)
 class MeasuredRoi:
+    """One ROI measured on every series. ``diameters_mm`` are (long, short, craniocaudal) in
+    the patient's axial plane on the anchor's grid (docs/measurements.md, Size); None when the
+    ROI has no voxel there."""
+
     spec: RoiSpec
     volume_ml: float | None
     max_diameter_mm: float | None
     by_role: dict[Role, SeriesMeasurement]  # roles present in the study and measured
+    diameters_mm: tuple[float, float, float] | None = None
 
 
 @dataclass(frozen=True)
@@ -473,6 +483,7 @@ class BehaviourPhrase:
     key: str
     phrase: str
     considerations: tuple[str, ...] = ()
+    references: tuple[str, ...] = ()  # the reference tissues the rule assumes (empty: any)
 
 
 @dataclass(frozen=True)
@@ -485,6 +496,8 @@ class LesionPhrases:
 
     grades: dict[str, str] = field(default_factory=dict)
     behaviour: tuple[BehaviourPhrase, ...] = ()
+    # Rules whose condition held but which assume another reference tissue (not applied).
+    not_applied: tuple[BehaviourPhrase, ...] = ()
 
 
 # --------------------------------------------------------------------------------------------

@@ -25,6 +25,7 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import SimpleITK as sitk
 
 from sigreport.align import identity_alignment, register_rigid, register_series
@@ -64,6 +65,7 @@ from sigreport.report import (
 from sigreport.report.outdir import check_outdir, report_inputs
 from sigreport.rois import (
     RoiSample,
+    axial_diameters_mm,
     load_case,
     max_diameter_mm,
     sample_region,
@@ -85,10 +87,12 @@ __all__ = [
     "analyze_case",
     "apply_role_overrides",
     "characterize_study",
+    "check_roi_extent",
     "choose_anchor",
     "choose_measured",
     "load_series",
     "measure_study",
+    "override_notes",
     "place_rois",
     "plan_report",
     "resolve_study_dir",
@@ -119,6 +123,8 @@ def apply_role_overrides(
     overridden role, the key of the stack that must be measured for it."""
     chosen: dict[Role, str] = {}
     stacks = list(index.stacks)
+    problems: list[str] = []
+    numbers = sorted({s.series_number for s in stacks if s.series_number is not None})
     for role, target in overrides.items():
         matches = [
             i
@@ -128,9 +134,8 @@ def apply_role_overrides(
         ]
         if not matches:
             what = f"series number {target}" if isinstance(target, int) else f"series {target}"
-            raise InputError(
-                f"{case_name}: [roles] {role.value} = {target!r}: no {what} in the study"
-            )
+            problems.append(f"[roles] {role.value} = {target!r}: no {what} in the study")
+            continue
         # A split series: the finest of its stacks carries the role.
         best = min(matches, key=lambda i: stacks[i].voxel_volume_mm3)
         stacks[best] = replace(
@@ -142,7 +147,93 @@ def apply_role_overrides(
             role_source="case file",
         )
         chosen[role] = stacks[best].key
+    if problems:
+        # Every [roles] problem at once, so that one edit of the case file fixes them all.
+        raise InputError(
+            f"{case_name}: "
+            + "; ".join(problems)
+            + f" (the study's series numbers: {', '.join(map(str, numbers)) or 'none'})"
+        )
     return replace(index, stacks=tuple(stacks)), chosen
+
+
+def override_notes(before: StudyIndex, after: StudyIndex) -> list[QcNote]:
+    """A warning for each ``[roles]`` override that contradicts the role the acquisition physics
+    gave the series (confidently: not UNKNOWN, not doubtful): "FLAIR = 3" naming a T2 series."""
+    notes = []
+    old = {s.key: s for s in before.stacks}
+    for stack in after.stacks:
+        was = old.get(stack.key)
+        if (
+            was is None
+            or stack.role_source != "case file"
+            or was.role in (Role.UNKNOWN, stack.role)
+            or was.confidence < DOUBTFUL_ROLE_CONFIDENCE
+        ):
+            continue
+        notes.append(
+            QcNote(
+                QcLevel.WARNING,
+                "role-override-contradicts",
+                f"the case file's [roles] makes {_series_name(stack)} {stack.role.value}, but its "
+                f"acquisition reads as {was.role.value} ({was.role_reason}); check [roles]",
+            )
+        )
+    return notes
+
+
+def check_roi_extent(
+    plan_regions: Sequence[Region],
+    anchor: Stack,
+    measured: Mapping[Role, Stack],
+    *,
+    case_name: str = "case.toml",
+) -> None:
+    """Refuse, before any pixel is read, an ROI that lies wholly outside the anchor's field of
+    view or is larger than every measured series' field of view along a patient axis.
+
+    Raises
+    ------
+    InputError
+        Naming every such ROI, its box and the field of view (mm, patient LPS coordinates).
+    """
+    anchor_lo, anchor_hi = stack_box_mm(anchor)
+    boxes = [stack_box_mm(s) for s in measured.values()]
+    all_lo = np.min([b[0] for b in boxes], axis=0)
+    all_hi = np.max([b[1] for b in boxes], axis=0)
+    problems = []
+    for region in plan_regions:
+        lo, hi = (np.asarray(v, dtype=np.float64) for v in region.bounds_mm())
+        if np.any(hi < anchor_lo) or np.any(lo > anchor_hi):
+            problems.append(
+                f"ROI {region.id} ({_box_text(lo, hi)}) lies outside the field of view of the "
+                f"anchor {_series_name(anchor)} ({_box_text(anchor_lo, anchor_hi)})"
+            )
+        elif np.any(hi - lo > all_hi - all_lo):
+            axis = "xyz"[int(np.argmax((hi - lo) - (all_hi - all_lo)))]
+            problems.append(
+                f"ROI {region.id} is larger than the imaged anatomy along patient {axis}: "
+                f"{_box_text(lo, hi)} against the series' {_box_text(all_lo, all_hi)}"
+            )
+    if problems:
+        raise InputError(f"{case_name}: " + "; ".join(problems) + " (check center_mm and sizes)")
+
+
+def stack_box_mm(stack: Stack) -> tuple[np.ndarray, np.ndarray]:
+    """The LPS box enclosing a stack's voxels (their outer faces; DICOM PS3.3 C.7.6.2.1.1)."""
+    direction = np.asarray(stack.direction, dtype=np.float64).reshape(3, 3)
+    spacing = np.asarray(stack.spacing_mm, dtype=np.float64)
+    size = np.asarray(stack.size, dtype=np.float64)
+    corners = np.array(
+        [(i, j, k) for i in (-0.5, size[0] - 0.5) for j in (-0.5, size[1] - 0.5)
+         for k in (-0.5, size[2] - 0.5)]
+    )  # fmt: skip
+    points = np.asarray(stack.origin_mm) + (corners * spacing) @ direction.T
+    return points.min(axis=0), points.max(axis=0)
+
+
+def _box_text(lo: np.ndarray, hi: np.ndarray) -> str:
+    return f"x {lo[0]:.0f} to {hi[0]:.0f}, y {lo[1]:.0f} to {hi[1]:.0f}, z {lo[2]:.0f} to {hi[2]:.0f} mm"
 
 
 def choose_measured(
@@ -310,9 +401,11 @@ def plan_report(
         raise InputError(
             f"no usable MR series under {study_dir}" + (f" ({reasons})" if reasons else "")
         )
+    inferred = index
     index, forced = apply_role_overrides(index, case.roles, case_name=case.path.name)
     measured, notes = choose_measured(index, forced)
-    qc = [QcNote(QcLevel.WARNING, "study", w) for w in index.warnings] + notes
+    qc = [QcNote(QcLevel.WARNING, "study", w) for w in index.warnings]
+    qc += override_notes(inferred, index) + notes
     if index.skipped:
         qc.append(
             QcNote(
@@ -332,6 +425,7 @@ def plan_report(
     qc.extend(roi_notes)
     regions = tuple(regions_list)
     anchor_role, anchor_reason = choose_anchor(case, measured, regions)
+    check_roi_extent(regions, measured[anchor_role], measured, case_name=case.path.name)
     do_register = (
         register if register is not None else (case.register if case.register is not None else True)
     )
@@ -389,7 +483,7 @@ def align_series(
     other_frames: set[Role] = set()
     for role, stack in plan.measured.items():
         if role is plan.anchor_role:
-            alignments[role] = identity_alignment("identity")
+            alignments[role] = replace(identity_alignment("identity"), displacement_mm=0.0)
             continue
         other_frame = (
             stack.frame_of_reference_uid is not None
@@ -411,7 +505,11 @@ def align_series(
         alignments.update(
             register_series(images[plan.anchor_role], to_register, box_mm=box, settings=settings)
         )
-    alignments = {role: alignments[role] for role in plan.measured}
+    # How far each series moved at the ROIs (docs/measurements.md, displacement_mm).
+    alignments = {
+        role: replace(alignments[role], displacement_mm=_box_displacement(alignments[role], box))
+        for role in plan.measured
+    }
     for role, alignment in alignments.items():
         if role in other_frames and not plan.register:
             qc.append(
@@ -458,6 +556,19 @@ def place_rois(
         min_voxels=int(rules.min_voxels),
     )
     return replace(plan, case=placed.case, regions=tuple(placed.regions)), placed
+
+
+def _box_displacement(alignment: Alignment, box: tuple[np.ndarray, np.ndarray]) -> float:
+    """Largest displacement (mm) of the 8 corners of the ROIs' box under the alignment's
+    transform (anchor space to the series' space); 0 for identity."""
+    if alignment.transform is None:
+        return 0.0
+    lo, hi = box
+    corners = [(x, y, z) for x in (lo[0], hi[0]) for y in (lo[1], hi[1]) for z in (lo[2], hi[2])]
+    moved = [alignment.transform.TransformPoint(tuple(float(c) for c in p)) for p in corners]
+    return float(
+        max(np.linalg.norm(np.subtract(m, p)) for m, p in zip(moved, corners, strict=True))
+    )
 
 
 def measure_study(
@@ -507,6 +618,7 @@ def measure_study(
                 role=role,
             )
         finest = samples[(spec.id, finest_role)]
+        on_anchor = samples[(spec.id, plan.anchor_role)]
         has_voxels = finest.n_voxels > 0
         measured_rois.append(
             MeasuredRoi(
@@ -516,6 +628,9 @@ def measure_study(
                 if has_voxels
                 else None,
                 by_role=by_role,
+                diameters_mm=axial_diameters_mm(on_anchor, images[plan.anchor_role])
+                if on_anchor.n_voxels > 0
+                else None,
             )
         )
     study = MeasuredStudy(rois=tuple(measured_rois), stacks=dict(measured), noise_sigma=noise)

@@ -19,6 +19,8 @@ from sigreport.measure.rules import (
     Rules,
     grade_of,
     grade_phrase,
+    is_borderline,
+    ratio_interval,
     rounded_percent,
     rounded_ratio,
 )
@@ -35,6 +37,7 @@ from sigreport.model import (
     QcLevel,
     QcNote,
     RoiKind,
+    RoiShape,
     RoiStats,
     Role,
     SeriesMeasurement,
@@ -58,11 +61,13 @@ class SignalResult:
     ratio: float | None = None
     grade: Grade | None = None
     phrase: str | None = None  # grade with qualifier, e.g. "markedly hyperintense"
+    borderline: bool | None = None  # near a grade threshold (rules.is_borderline)
 
     def to_json(self) -> dict[str, Any]:
         out: dict[str, Any] = dict(self.stats.to_json())
         out["ratio"] = _r(self.ratio, 4)
         out["grade"] = self.grade.value if self.grade is not None else None
+        out["borderline"] = self.borderline
         return out
 
 
@@ -80,6 +85,10 @@ class EnhancementResult:
     core_percent: float | None = None
     pattern_pre: Role | None = None  # the pair the pattern comes from (finest voxels)
     pattern_post: Role | None = None
+    # "raw" when normalized and raw percents disagree (the reference itself changed) and the
+    # flag follows the raw percent; then reference_percent is the reference's own raw change.
+    basis: str = "normalized"
+    reference_percent: float | None = None
 
     def to_json(self) -> dict[str, Any]:
         out: dict[str, Any] = {
@@ -91,6 +100,9 @@ class EnhancementResult:
         }
         if self.raw_percent is not None:
             out["raw_percent"] = _r(self.raw_percent, 2)
+        if self.basis != "normalized":
+            out["basis"] = self.basis
+            out["reference_percent"] = _r(self.reference_percent, 2)
         return out
 
 
@@ -132,9 +144,13 @@ class LesionResult:
     signal: dict[Role, SignalResult | None]
     enhancement: EnhancementResult
     suppression: dict[str, SuppressionResult]
-    flow_void: bool
+    flow_void: bool | None  # None: not assessable (measured on too few series)
     behaviour: tuple[str, ...] = ()
     behaviour_phrases: tuple[BehaviourPhrase, ...] = ()
+    size: dict[str, Any] | None = None  # findings.json lesions[].size
+    # Rules whose condition held but which assume another reference tissue (behaviour.toml).
+    behaviour_not_applied: tuple[str, ...] = ()
+    not_applied_phrases: tuple[BehaviourPhrase, ...] = ()
 
     def phrases(self) -> LesionPhrases:
         """The words the report renders: the graded wording per series and the behaviour."""
@@ -145,6 +161,7 @@ class LesionResult:
                 if s is not None and s.phrase is not None
             },
             behaviour=self.behaviour_phrases,
+            not_applied=self.not_applied_phrases,
         )
 
     def to_json(self) -> dict[str, Any]:
@@ -154,6 +171,7 @@ class LesionResult:
             "reference": self.reference,
             "volume_ml": _r(self.volume_ml, 4),
             "max_diameter_mm": _r(self.max_diameter_mm, 2),
+            "size": self.size,
             "signal": {
                 role.value: (s.to_json() if s is not None else None)
                 for role, s in self.signal.items()
@@ -162,6 +180,7 @@ class LesionResult:
             "suppression": {kind: s.to_json() for kind, s in self.suppression.items()},
             "flow_void": self.flow_void,
             "behaviour": list(self.behaviour),
+            "behaviour_not_applied": list(self.behaviour_not_applied),
         }
 
 
@@ -431,8 +450,10 @@ def _check_homogeneous(ctx: _Context, ref: MeasuredRoi) -> None:
 def _roi_entry(ctx: _Context, roi: MeasuredRoi) -> dict[str, Any]:
     tissue = ctx.rules.tissue(roi.spec.tissue)
     snr: dict[str, float | None] = {}
+    medians: dict[str, float | None] = {}
     for role in ctx.roles:
         median = _median(roi.by_role.get(role))
+        medians[role.value] = _r(median, 4)
         if median is None:
             continue
         sigma = ctx.measured.noise_sigma.get(role)
@@ -440,8 +461,10 @@ def _roi_entry(ctx: _Context, roi: MeasuredRoi) -> dict[str, Any]:
     return {
         "id": roi.spec.id,
         "kind": roi.spec.kind.value,
+        "site": roi.spec.site,
         "tissue": tissue.name if tissue is not None else roi.spec.tissue,
         "volume_ml": _r(roi.volume_ml, 4),
+        "medians": medians,
         "snr": snr,
     }
 
@@ -527,11 +550,19 @@ def _lesion(ctx: _Context, lesion: MeasuredRoi, ref: MeasuredRoi | None) -> Lesi
                 f"{lesion.spec.id} cannot be normalized there",
             )
         ratios[role] = ratio
+        ref_stats = _measurement(ref, role)
+        interval = (
+            ratio_interval(m.stats, ref_stats.stats, confidence=rules.borderline.confidence)
+            if ratio is not None and ref_stats is not None and ref_stats.stats is not None
+            else None
+        )
+        borderline = is_borderline(ratio, rules, interval)
         signal[role] = SignalResult(
             stats=m.stats,
             ratio=ratio,
             grade=grade_of(ratio, rules),
-            phrase=grade_phrase(ratio, rules),
+            phrase=grade_phrase(ratio, rules, borderline=bool(borderline)),
+            borderline=borderline,
         )
 
     enhancement = _enhancement(ctx, lesion, ref, ratios)
@@ -539,7 +570,7 @@ def _lesion(ctx: _Context, lesion: MeasuredRoi, ref: MeasuredRoi | None) -> Lesi
         kind: _suppression(ctx, kind, ratios, lesion.spec.id) for kind in ("fluid", "fat")
     }
     flow_void = _flow_void(ctx, lesion, signal)
-    if flow_void:
+    if flow_void is True:
         # A flow void holds no signal to compare: its percent changes are noise over noise.
         # It is dark after contrast too (it does not enhance), and suppression is not assessable.
         enhancement = replace(
@@ -558,14 +589,32 @@ def _lesion(ctx: _Context, lesion: MeasuredRoi, ref: MeasuredRoi | None) -> Lesi
         )
 
     fat = suppression["fat"]
-    facts: dict[str, Any] = {role.value: s.grade for role, s in signal.items() if s is not None}
+    # A borderline grade is unknown to the rules: no rule fires on it alone.
+    facts: dict[str, Any] = {
+        role.value: (None if s.borderline else s.grade)
+        for role, s in signal.items()
+        if s is not None
+    }
     for kind, result in suppression.items():
         facts[f"{kind}_suppressed"] = result.suppressed if result.reliable else None
     facts["fat_suppression_specific"] = fat.specific if fat.source is not None else None
     facts["enhancing"] = enhancement.enhancing
     facts["pattern"] = enhancement.pattern
     facts["flow_void"] = flow_void
-    matched = [rule for rule in rules.behaviour.values() if rule.matches(facts)]
+    candidates = [rule for rule in rules.behaviour.values() if rule.matches(facts)]
+    ref_tissue = rules.tissue(ref.spec.tissue) if ref is not None else None
+    tissue_name = ref_tissue.name if ref_tissue is not None else None
+    matched = [rule for rule in candidates if rule.assumes(tissue_name)]
+    not_applied = [rule for rule in candidates if not rule.assumes(tissue_name)]
+    for rule in not_applied:
+        ctx.note(
+            QcLevel.INFO,
+            "behaviour-other-reference",
+            f"{lesion.spec.id}: rule {rule.key} not applied: it assumes a reference of "
+            f"{', '.join(rule.references)}, and {lesion.spec.id} is normalized by "
+            f"{tissue_name or (ref.spec.tissue if ref is not None else None) or 'no known tissue'}",
+        )
+    size = _size(lesion)
 
     return LesionResult(
         id=lesion.spec.id,
@@ -581,7 +630,28 @@ def _lesion(ctx: _Context, lesion: MeasuredRoi, ref: MeasuredRoi | None) -> Lesi
         behaviour_phrases=tuple(
             BehaviourPhrase(rule.key, rule.phrase, rule.considerations) for rule in matched
         ),
+        size=size,
+        behaviour_not_applied=tuple(rule.key for rule in not_applied),
+        not_applied_phrases=tuple(
+            BehaviourPhrase(rule.key, rule.phrase, rule.considerations, rule.references)
+            for rule in not_applied
+        ),
     )
+
+
+def _size(lesion: MeasuredRoi) -> dict[str, Any] | None:
+    """findings.json ``size``: where the size comes from (``mask`` for an outline, ``roi`` for a
+    typed shape, whose size is the ROI's and not the lesion's), volume and axial diameters."""
+    if lesion.volume_ml is None and lesion.diameters_mm is None:
+        return None
+    source = "mask" if lesion.spec.shape is RoiShape.MASK else "roi"
+    return {
+        "source": source,
+        "volume_ml": _r(lesion.volume_ml, 4),
+        "diameters_mm": None
+        if lesion.diameters_mm is None
+        else [round(float(d), 2) for d in lesion.diameters_mm],
+    }
 
 
 def _part_percent(
@@ -677,6 +747,7 @@ def _enhancement(
         ctx.pattern_pairs.setdefault((pair, pattern_pair), []).append(lesion.spec.id)
 
     raw = None
+    basis, reference_percent = "normalized", None
     a, b = stacks[pre], stacks[post]
     if (
         a.scaling_key is not None
@@ -693,7 +764,14 @@ def _enhancement(
                     f"{lesion.spec.id}: enhancement {percent:.1f} % normalized by the reference "
                     f"but {raw:.1f} % un-normalized ({pre.value} and {post.value} share settings "
                     f"and scaling); they differ by {gap:.1f} points (tolerance "
-                    f"{e.raw_tolerance_percent:g}): the reference tissue itself changed",
+                    f"{e.raw_tolerance_percent:g}): the reference tissue itself changed; the "
+                    "enhancement flag follows the un-normalized percent",
+                )
+                # Same settings and scaling: the raw change is the trustworthy one.
+                basis = "raw"
+                enhancing = rounded_percent(raw) >= e.enhancing_min_percent
+                reference_percent = _percent_change(
+                    _median(_measurement(ref, post)), _median(_measurement(ref, pre))
                 )
     return EnhancementResult(
         pre=pre,
@@ -706,6 +784,8 @@ def _enhancement(
         core_percent=core,
         pattern_pre=pattern_pair[0] if pattern is not None else None,
         pattern_post=pattern_pair[1] if pattern is not None else None,
+        basis=basis,
+        reference_percent=reference_percent,
     )
 
 
@@ -731,18 +811,18 @@ def _suppression(
 
 def _flow_void(
     ctx: _Context, lesion: MeasuredRoi, signal: Mapping[Role, SignalResult | None]
-) -> bool:
+) -> bool | None:
     """Dark on every measured series and near the noise floor (docs/usage.md, findings.json ``flow_void``).
 
     Series where the lesion has no ratio do not count; at least ``[flow_void] min_series``
-    must. The noise criterion (median <= noise_factor x sigma sqrt(pi/2), the Rayleigh mean of
+    must, else the answer is None (not assessed: nothing is said about what was not measured). The noise criterion (median <= noise_factor x sigma sqrt(pi/2), the Rayleigh mean of
     the background, Gudbjartsson & Patz 1995) must hold on every counted series with a noise
     estimate, and at least one must have one.
     """
     t = ctx.rules.thresholds.flow_void
     counted = [(role, s) for role, s in signal.items() if s is not None and s.ratio is not None]
     if len(counted) < t.min_series:
-        return False
+        return None
     if not all(rounded_ratio(s.ratio) <= t.max_ratio for _, s in counted):  # type: ignore[arg-type]
         return False
     checked = 0

@@ -1,12 +1,14 @@
 """The measurement stage's lexicon: thresholds, tissues and behaviour rules, validated on load.
 
-Three files of the lexicon (``sigreport.lexicon``) are read here:
+Four files of the lexicon (``sigreport.lexicon``) are read here:
 
 - ``thresholds.toml``: every number a site might change (grades, qualifiers, enhancement,
   suppression, controls, reference homogeneity, flow void, minimum voxel counts);
 - ``tissues.toml``: reference and control tissue names, their aliases and, for controls, the
   suppression they check (``check = "fluid"`` or ``"fat"``);
-- ``behaviour.toml``: signal-behaviour rules (a small condition language, see that file).
+- ``behaviour.toml``: signal-behaviour rules (a small condition language, see that file), each
+  with the reference tissues its grades assume;
+- ``grading.toml``: when a grade is borderline (margin and confidence level).
 
 A site file replaces the bundled file of the same name whole, so every key must be present; an
 unknown key, a missing key or a value of the wrong type is an ``InputError`` naming the file and
@@ -20,15 +22,17 @@ import math
 from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
+from statistics import NormalDist
 from typing import Any
 
 from sigreport import lexicon
 from sigreport.errors import InputError
-from sigreport.model import EnhancementPattern, Grade, Role
+from sigreport.model import EnhancementPattern, Grade, RoiStats, Role
 
 THRESHOLDS_FILE = "thresholds.toml"
 TISSUES_FILE = "tissues.toml"
 BEHAVIOUR_FILE = "behaviour.toml"
+GRADING_FILE = "grading.toml"
 
 #: Suppression kinds a control tissue can check (tissues.toml ``check``).
 CHECK_KINDS = ("fluid", "fat")
@@ -264,12 +268,22 @@ def _fold(word: str) -> str:
 @dataclass(frozen=True)
 class BehaviourRule:
     """One signal-behaviour rule: ``key`` (stable, in findings.json), the neutral ``phrase``, the
-    usual ``considerations`` (things to consider, never a diagnosis) and its condition."""
+    usual ``considerations`` (things to consider, never a diagnosis) and its condition.
+
+    ``references`` are the reference tissues (tissues.toml names) the rule's grades assume; an
+    empty tuple means any reference. Against another reference the rule does not fire."""
 
     key: str
     phrase: str
     considerations: tuple[str, ...]
     when: Mapping[str, Any]
+    references: tuple[str, ...] = ()
+
+    def assumes(self, tissue: str | None) -> bool:
+        """True when the rule may be read against reference ``tissue`` (a tissues.toml name)."""
+        if not self.references:
+            return True
+        return tissue is not None and _fold(tissue) in {_fold(t) for t in self.references}
 
     def evaluate(self, facts: Mapping[str, Any]) -> bool | None:
         """Three-valued truth of the condition on ``facts`` (role name -> Grade, flag -> bool,
@@ -351,7 +365,7 @@ def _parse_behaviour(table: Mapping[str, Any], source: str) -> dict[str, Behavio
         where = f"{source} [rule.{key}]"
         if not isinstance(entry, dict):
             raise InputError(f"{where}: expected a table, got {entry!r}")
-        lexicon.check_keys(entry, {"phrase", "considerations", "when"}, where)
+        lexicon.check_keys(entry, {"phrase", "considerations", "when", "references"}, where)
         phrase = entry.get("phrase")
         if not isinstance(phrase, str) or not phrase.strip():
             raise InputError(f"{where}: missing phrase (a non-empty string)")
@@ -363,10 +377,53 @@ def _parse_behaviour(table: Mapping[str, Any], source: str) -> dict[str, Behavio
         if "when" not in entry:
             raise InputError(f"{where}: missing when (the rule's condition)")
         _check_condition(entry["when"], f"{where} when")
+        references = entry.get("references", [])
+        if not isinstance(references, list) or not all(
+            isinstance(t, str) and t.strip() for t in references
+        ):
+            raise InputError(f"{where} references: expected a list of tissue names")
         out[key] = BehaviourRule(
-            key=key, phrase=phrase, considerations=tuple(considerations), when=entry["when"]
+            key=key,
+            phrase=phrase,
+            considerations=tuple(considerations),
+            when=entry["when"],
+            references=tuple(references),
         )
     return out
+
+
+# --------------------------------------------------------------------------------------------
+# grading.toml
+
+
+@dataclass(frozen=True)
+class BorderlineSettings:
+    """grading.toml ``[borderline]``: a grade within ``margin`` of a threshold, or whose ratio's
+    ``confidence`` interval contains one, is borderline."""
+
+    margin: float = 0.03
+    confidence: float = 0.95
+    word: str = "borderline"
+
+
+def _parse_grading(table: Mapping[str, Any], source: str) -> BorderlineSettings:
+    lexicon.check_keys(dict(table), {"borderline"}, source)
+    section = table.get("borderline")
+    if not isinstance(section, dict):
+        raise InputError(f"{source}: missing section [borderline]")
+    where = f"{source} [borderline]"
+    lexicon.check_keys(section, {"margin", "confidence", "word"}, where)
+    missing = sorted({"margin", "confidence", "word"} - set(section))
+    if missing:
+        raise InputError(f"{where}: missing key(s) {', '.join(missing)}")
+    margin = _typed(section["margin"], "float", f"{where} margin")
+    confidence = _typed(section["confidence"], "float", f"{where} confidence")
+    if not 0.0 <= margin < 0.5:
+        raise InputError(f"{where} margin: must be in [0, 0.5), got {margin!r}")
+    if not 0.0 < confidence < 1.0:
+        raise InputError(f"{where} confidence: must be in (0, 1), got {confidence!r}")
+    word = _typed(section["word"], "str", f"{where} word")
+    return BorderlineSettings(margin=margin, confidence=confidence, word=word)
 
 
 # --------------------------------------------------------------------------------------------
@@ -385,6 +442,7 @@ class Rules:
     tissues: dict[str, Tissue]
     behaviour: dict[str, BehaviourRule]
     sources: dict[str, Path]
+    borderline: BorderlineSettings = BorderlineSettings()
 
     @property
     def min_voxels(self) -> int:
@@ -423,14 +481,25 @@ def load_rules(site_lexicon: Path | None = None) -> Rules:
     """
     sources = {
         name: lexicon.find_file(name, site_lexicon)
-        for name in (THRESHOLDS_FILE, TISSUES_FILE, BEHAVIOUR_FILE)
+        for name in (THRESHOLDS_FILE, TISSUES_FILE, BEHAVIOUR_FILE, GRADING_FILE)
     }
     tables = {name: lexicon.read_table(name, site_lexicon) for name in sources}
+    tissues = _parse_tissues(tables[TISSUES_FILE], str(sources[TISSUES_FILE]))
+    behaviour = _parse_behaviour(tables[BEHAVIOUR_FILE], str(sources[BEHAVIOUR_FILE]))
+    known = {_fold(w) for t in tissues.values() for w in (t.name, *t.aliases)}
+    for rule in behaviour.values():
+        for name in rule.references:
+            if _fold(name) not in known:
+                raise InputError(
+                    f"{sources[BEHAVIOUR_FILE]} [rule.{rule.key}] references: {name!r} is not a "
+                    f"tissue of {sources[TISSUES_FILE]}"
+                )
     return Rules(
         thresholds=_parse_thresholds(tables[THRESHOLDS_FILE], str(sources[THRESHOLDS_FILE])),
-        tissues=_parse_tissues(tables[TISSUES_FILE], str(sources[TISSUES_FILE])),
-        behaviour=_parse_behaviour(tables[BEHAVIOUR_FILE], str(sources[BEHAVIOUR_FILE])),
+        tissues=tissues,
+        behaviour=behaviour,
         sources=sources,
+        borderline=_parse_grading(tables[GRADING_FILE], str(sources[GRADING_FILE])),
     )
 
 
@@ -457,8 +526,9 @@ def grade_of(ratio: float | None, rules: Rules) -> Grade | None:
     return Grade.ISOINTENSE
 
 
-def grade_phrase(ratio: float | None, rules: Rules) -> str | None:
-    """The grade with its qualifier, e.g. ``"markedly hyperintense"``, ``"isointense"``.
+def grade_phrase(ratio: float | None, rules: Rules, *, borderline: bool = False) -> str | None:
+    """The grade with its qualifier, e.g. ``"markedly hyperintense"``, ``"isointense"``, or
+    ``"borderline hypointense"`` when ``borderline`` (grading.toml ``word``).
 
     Parameters
     ----------
@@ -466,6 +536,8 @@ def grade_phrase(ratio: float | None, rules: Rules) -> str | None:
         Lesion median / reference median on one series, or None.
     rules
         The lexicon (``[grade]`` and ``[qualifiers]`` of thresholds.toml).
+    borderline
+        The grade is borderline (:func:`is_borderline`).
 
     Returns
     -------
@@ -475,6 +547,9 @@ def grade_phrase(ratio: float | None, rules: Rules) -> str | None:
     grade = grade_of(ratio, rules)
     if grade is None or ratio is None:
         return None
+    if borderline:
+        # A qualifier would overstate a grade that sits at its edge: "borderline hypointense".
+        return f"{rules.borderline.word} {grade.value}"
     r = rounded_ratio(ratio)
     q = rules.thresholds.qualifiers
     word = None
@@ -489,3 +564,46 @@ def grade_phrase(ratio: float | None, rules: Rules) -> str | None:
         elif r > q.mild_hypo_min_ratio:
             word = q.mild_word
     return f"{word} {grade.value}" if word else grade.value
+
+
+def ratio_interval(
+    lesion: RoiStats, reference: RoiStats, *, confidence: float
+) -> tuple[float, float] | None:
+    """The ``confidence`` interval of lesion median / reference median from the ROIs' noise.
+
+    The standard error of a median of n values with standard deviation sd is
+    sqrt(pi / 2) sd / sqrt(n) (asymptotic, normally distributed values; a textbook result,
+    from memory: Kendall & Stuart); the relative errors of the two medians add in quadrature
+    (first-order error propagation of a quotient). Returns None when a median is not positive.
+    """
+    if not (lesion.median > 0 and reference.median > 0) or lesion.n_voxels < 1:
+        return None
+    if reference.n_voxels < 1:
+        return None
+    k = math.sqrt(math.pi / 2.0)
+    rel = math.hypot(
+        k * lesion.sd / math.sqrt(lesion.n_voxels) / lesion.median,
+        k * reference.sd / math.sqrt(reference.n_voxels) / reference.median,
+    )
+    z = NormalDist().inv_cdf(0.5 + confidence / 2.0)
+    ratio = lesion.median / reference.median
+    return ratio * (1.0 - z * rel), ratio * (1.0 + z * rel)
+
+
+def is_borderline(
+    ratio: float | None, rules: Rules, interval: tuple[float, float] | None = None
+) -> bool | None:
+    """True when ``ratio`` lies within the lexicon's margin of a grade threshold, or
+    ``interval`` (:func:`ratio_interval`) contains one (grading.toml ``[borderline]``); None
+    when there is no ratio."""
+    if ratio is None or not math.isfinite(ratio):
+        return None
+    r = rounded_ratio(ratio)
+    g = rules.thresholds.grade
+    margin = rules.borderline.margin
+    for threshold in (g.hypo_max_ratio, g.hyper_min_ratio):
+        if abs(r - threshold) <= margin + 1e-9:
+            return True
+        if interval is not None and interval[0] <= threshold <= interval[1]:
+            return True
+    return False

@@ -29,7 +29,7 @@ from sigreport.model import (
 )
 
 #: The ``schema`` value of findings.json.
-FINDINGS_SCHEMA = "sigreport-findings/1"
+FINDINGS_SCHEMA = "sigreport-findings/2"
 
 __all__ = [
     "FINDINGS_SCHEMA",
@@ -50,7 +50,8 @@ def build_findings(
     *,
     cautions: Sequence[str],
 ) -> dict[str, Any]:
-    """The findings.json object (schema ``sigreport-findings/1``, docs/findings.schema.json).
+    """The findings.json object (schema ``sigreport-findings/2``, docs/findings.schema.json;
+    what changed from /1 is in docs/CHANGES.md).
 
     Parameters
     ----------
@@ -140,7 +141,12 @@ def phrases_from_findings(findings: Mapping[str, Any], rules: Rules) -> dict[str
         grades: dict[str, str] = {}
         for role, stats in (lesion.get("signal") or {}).items():
             ratio = None if stats is None else stats.get("ratio")
-            phrase = grade_phrase(float(ratio), rules) if ratio is not None else None
+            borderline = bool(stats.get("borderline")) if stats is not None else False
+            phrase = (
+                grade_phrase(float(ratio), rules, borderline=borderline)
+                if ratio is not None
+                else None
+            )
             if phrase is not None:
                 grades[str(role)] = phrase
         behaviour = []
@@ -148,5 +154,14 @@ def phrases_from_findings(findings: Mapping[str, Any], rules: Rules) -> dict[str
             rule = rules.behaviour.get(str(key))
             if rule is not None:
                 behaviour.append(BehaviourPhrase(rule.key, rule.phrase, rule.considerations))
-        out[str(lesion.get("id"))] = LesionPhrases(grades=grades, behaviour=tuple(behaviour))
+        not_applied = []
+        for key in lesion.get("behaviour_not_applied") or []:
+            rule = rules.behaviour.get(str(key))
+            if rule is not None:
+                not_applied.append(
+                    BehaviourPhrase(rule.key, rule.phrase, rule.considerations, rule.references)
+                )
+        out[str(lesion.get("id"))] = LesionPhrases(
+            grades=grades, behaviour=tuple(behaviour), not_applied=tuple(not_applied)
+        )
     return out

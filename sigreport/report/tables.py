@@ -34,6 +34,10 @@ def ordered_roles(signal: Mapping[str, Any]) -> list[str]:
     return sorted(signal, key=role_sort_key)
 
 
+#: What a cell or note says for a finding that is not assessed.
+NOT_ASSESSED = "not assessed"
+
+
 def table_rows(findings: Mapping[str, Any]) -> list[dict[str, Any]]:
     """One row per lesion and role of its ``signal`` (null signal included, noted).
 
@@ -64,6 +68,20 @@ def table_rows(findings: Mapping[str, Any]) -> list[dict[str, Any]]:
             else:
                 for key in ("n_voxels", "mean", "median", "sd", "p05", "p95", "ratio", "grade"):
                     row[key] = stats.get(key)
+                if stats.get("ratio") is None:
+                    notes.append("not graded: reference not measured (see qc)")
+                elif stats.get("borderline"):
+                    notes.append("borderline grade")
+            if lesion.get("flow_void") is True:
+                # A flow void holds only noise: its changes are not assessed (findings.json
+                # keeps the numbers; the table does not present them as findings).
+                if role in (enhancement.get("post"),) or any(
+                    (flag or {}).get("to") == role for flag in suppression.values()
+                ):
+                    notes.append(NOT_ASSESSED + " (flow void)")
+                row["notes"] = "; ".join(notes)
+                rows.append(row)
+                continue
             if enhancement.get("post") == role:
                 row["enhancement_percent"] = enhancement.get("percent")
                 if enhancement.get("percent") is not None:
@@ -77,7 +95,11 @@ def table_rows(findings: Mapping[str, Any]) -> list[dict[str, Any]]:
                     else:
                         notes.append("not enhancing")
                 if enhancement.get("raw_percent") is not None:
-                    notes.append(f"unnormalized change {enhancement['raw_percent']:+.1f} %")
+                    raw = float(enhancement["raw_percent"])
+                    said = "unnormalized change " + ("0.0" if round(raw, 1) == 0 else f"{raw:+.1f}")
+                    notes.append(said + " %")
+                if enhancement.get("basis") == "raw":
+                    notes.append("the reference itself changed; flag from the unnormalized change")
             if enhancement.get("pre") == role and enhancement.get("percent") is not None:
                 notes.append(f"baseline for {enhancement.get('post')}")
             for kind in ("fluid", "fat"):

@@ -8,6 +8,7 @@ lists built here, so a site can rearrange or reword the report without code.
 
 from __future__ import annotations
 
+import datetime as _dt
 import math
 import re
 import textwrap
@@ -22,7 +23,7 @@ from jinja2.sandbox import ImmutableSandboxedEnvironment, SecurityError
 from sigreport import lexicon
 from sigreport.errors import InputError
 from sigreport.model import LesionPhrases, role_sort_key
-from sigreport.report.tables import ordered_roles, series_by_role, table_rows
+from sigreport.report.tables import NOT_ASSESSED, ordered_roles, series_by_role, table_rows
 from sigreport.report.wording import Wording, fill
 from sigreport.safetext import clean_strings
 
@@ -98,16 +99,21 @@ def _template_file(env: jinja2.Environment, name: str) -> str:
     return filename or name
 
 
-_MD_SPECIAL = re.compile(r"([\\`*_\[\]|#])")
+_MD_SPECIAL = re.compile(r"([\\`*_\[\]|#<])")
+_MD_ENTITY = re.compile(r"&(?=#?[A-Za-z0-9]+;)")
 
 
 def md_escape(text: Any) -> str:
-    """Text safe to place in Markdown: HTML-special characters as entities (a Markdown viewer
-    renders raw HTML), Markdown punctuation backslash-escaped, newlines as spaces."""
+    """Text safe to place in Markdown, readable as it stands: Markdown punctuation and ``<``
+    (which would open raw HTML) backslash-escaped, an ``&`` that would start a character
+    reference backslash-escaped (CommonMark: any ASCII punctuation may be escaped), a leading
+    ``>`` escaped (a block quote), newlines as spaces. No HTML entity is written, so the file
+    reads "T1 -> T1POST" in an editor as in a viewer."""
     value = "" if text is None else str(text)
-    value = value.replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
     value = _MD_SPECIAL.sub(r"\\\1", value)
-    return " ".join(value.splitlines())
+    value = _MD_ENTITY.sub(r"\\&", value)
+    value = " ".join(value.splitlines())
+    return "\\" + value if value.startswith(">") else value
 
 
 def wrap(text: Any, width: int = TEXT_WIDTH, indent: str = "", first: str | None = None) -> str:
@@ -129,15 +135,20 @@ def _capital(sentence: str) -> str:
 
 
 def _num(value: Any, digits: int) -> str:
+    """``value`` with ``digits`` decimals; "n/a" when missing; never "-0" (a value that rounds
+    to zero has no sign)."""
     if value is None or (isinstance(value, float) and not math.isfinite(value)):
         return "n/a"
-    return f"{float(value):.{digits}f}"
+    text = f"{float(value):.{digits}f}"
+    return text[1:] if text.startswith("-") and float(text) == 0.0 else text
 
 
 def _signed(value: Any) -> str:
-    if value is None:
+    """A percentage with its sign ("+84", "-12"); "0" for anything that rounds to zero."""
+    if value is None or (isinstance(value, float) and not math.isfinite(value)):
         return "n/a"
-    return f"{float(value):+.0f}"
+    text = f"{float(value):+.0f}"
+    return "0" if float(text) == 0.0 else text
 
 
 def lesion_sentences(
@@ -149,33 +160,35 @@ def lesion_sentences(
     """The draft findings sentences for one lesion, in reading order: size, signal on each
     series relative to the reference tissue, suppression, enhancement, flow void.
 
-    The graded wording of each series ("markedly hyperintense") is the one characterization
-    chose (``phrases.grades``); a series without one reads as its plain ``grade``."""
+    The graded wording of each series ("markedly hyperintense", "borderline hypointense") is
+    the one characterization chose (``phrases.grades``); a series without one reads as its
+    plain ``grade``. Every grade names the reference tissue. Nothing is said about what was not
+    measured or not assessed, and no placeholder is ever filled with a missing value: a pair the
+    study lacks is left out, a finding not assessed says so.
+    """
     s = wording.sentences
-    out: list[str] = []
-    volume, diameter = lesion.get("volume_ml"), lesion.get("max_diameter_mm")
-    if volume is not None and diameter is not None:
-        out.append(
-            fill(s["size"], "size", volume_ml=_num(volume, 2), max_diameter_mm=_num(diameter, 1))
-        )
-    elif volume is not None:
-        out.append(fill(s["size_volume_only"], "size_volume_only", volume_ml=_num(volume, 2)))
-    else:
-        out.append(s["size_unknown"])
+    out: list[str] = [_size_sentence(lesion, wording)]
 
     tissue = reference_tissue(lesion, findings)
     signal: Mapping[str, Any] = lesion.get("signal") or {}
     # Series sharing one graded wording are named together, in reading order of the first:
-    # "hyperintense to white matter on T2 and FLAIR, isointense on T1".
+    # "hyperintense to white matter on T2 and FLAIR; isointense to white matter on T1".
     groups: dict[str, list[str]] = {}
     unmeasured: list[str] = []
+    unnormalized: list[str] = []
     for role in ordered_roles(signal):
         stats = signal[role]
         name = wording.role_name(role)
-        if stats is None or stats.get("ratio") is None:
+        if stats is None:
             unmeasured.append(name)
             continue
-        graded = phrases.grades.get(role) or stats.get("grade") or "unmeasured"
+        if stats.get("ratio") is None:
+            unnormalized.append(name)
+            continue
+        graded = phrases.grades.get(role) or stats.get("grade")
+        if not graded:
+            unnormalized.append(name)
+            continue
         groups.setdefault(str(graded), []).append(name)
     items: list[str] = []
     for grade, names in groups.items():
@@ -187,38 +200,73 @@ def lesion_sentences(
         out.append(
             fill(s["signal_unmeasured"], "signal_unmeasured", roles=wording.join(unmeasured))
         )
+    if unnormalized and lesion.get("reference"):
+        out.append(
+            fill(
+                s["signal_unnormalized"],
+                "signal_unnormalized",
+                roles=wording.join(unnormalized),
+                reference=str(lesion["reference"]),
+            )
+        )
+    elif unnormalized:
+        out.append(
+            fill(s["signal_no_reference"], "signal_no_reference", roles=wording.join(unnormalized))
+        )
+
+    flow_void = lesion.get("flow_void")
+    if flow_void is True:
+        # A flow void holds only noise: its percent changes are not findings.
+        out.append(s["flow_void"])
+        out.append(s["not_assessed_flow_void"])
+        return [_capital(sentence) for sentence in out]
 
     suppression: Mapping[str, Any] = lesion.get("suppression") or {}
     for kind in ("fluid", "fat"):
         flag = suppression.get(kind)
-        if not flag:
-            continue
+        if not flag or not flag.get("from") or not flag.get("to"):
+            continue  # the study has no pair of this kind: nothing to say
+        drop = flag.get("drop_percent")
         values = {
-            "from": wording.role_name(str(flag.get("from"))),
-            "to": wording.role_name(str(flag.get("to"))),
-            "drop": _num(flag.get("drop_percent"), 0),
-            "rise": _num(-flag["drop_percent"], 0) if flag.get("drop_percent") is not None else "",
+            "from": wording.role_name(str(flag["from"])),
+            "to": wording.role_name(str(flag["to"])),
+            "drop": _num(drop, 0),
+            "rise": _num(-float(drop), 0) if drop is not None else "",
         }
-        if flag.get("drop_percent") is None or flag.get("suppressed") is None:
+        if drop is None or flag.get("suppressed") is None:
             out.append(fill(s["suppression_unknown"], "suppression_unknown", **values))
         else:
             key = f"{kind}_suppressed" if flag["suppressed"] else f"{kind}_not_suppressed"
-            if not flag["suppressed"] and round(float(flag["drop_percent"])) < 0:
+            if not flag["suppressed"] and round(float(drop)) < 0:
                 key = f"{kind}_rises"
             out.append(fill(s[key], key, **values))
         if flag.get("reliable") is False:
             out.append(s["unreliable"])
 
     enhancement = lesion.get("enhancement") or {}
-    if enhancement and (enhancement.get("pre") or enhancement.get("post")):
+    if enhancement.get("pre") and enhancement.get("post"):
         percent = enhancement.get("percent")
         values = {
-            "pre": wording.role_name(str(enhancement.get("pre"))),
-            "post": wording.role_name(str(enhancement.get("post"))),
+            "pre": wording.role_name(str(enhancement["pre"])),
+            "post": wording.role_name(str(enhancement["post"])),
             "percent": _signed(percent),
         }
+        raw = enhancement.get("raw_percent")
         if percent is None:
             out.append(fill(s["enhancement_unknown"], "enhancement_unknown", **values))
+        elif enhancement.get("basis") == "raw" and raw is not None:
+            # The reference itself enhanced: both numbers, the raw one first (it is the one the
+            # flag follows).
+            out.append(
+                fill(
+                    s["enhancement_reference_changed"],
+                    "enhancement_reference_changed",
+                    raw=_signed(raw),
+                    tissue=tissue,
+                    reference=_signed(enhancement.get("reference_percent")),
+                    **values,
+                )
+            )
         elif enhancement.get("enhancing"):
             pattern = enhancement.get("pattern")
             if pattern in (None, "none"):
@@ -232,15 +280,10 @@ def lesion_sentences(
                 )
         else:
             out.append(fill(s["not_enhancing"], "not_enhancing", **values))
-        if percent is not None and enhancement.get("raw_percent") is not None:
-            out.append(
-                fill(s["raw_percent"], "raw_percent", raw=_signed(enhancement["raw_percent"]))
-            )
+        if percent is not None and raw is not None and enhancement.get("basis") != "raw":
+            out.append(fill(s["raw_percent"], "raw_percent", raw=_signed(raw)))
 
-    flow_void = lesion.get("flow_void")
-    if flow_void is True:
-        out.append(s["flow_void"])
-    elif flow_void is False:
+    if flow_void is False:
         out.append(s["no_flow_void"])
     change = change_sentence(lesion, wording)
     if change:
@@ -333,6 +376,35 @@ def not_seen_sentence(findings: Mapping[str, Any], wording: Wording) -> str:
     )
 
 
+def _size_sentence(lesion: Mapping[str, Any], wording: Wording) -> str:
+    """The size: axial diameters when the lesion was outlined, the ROI's volume (labelled as
+    such) for a typed shape, and the findings/1 fields for a findings.json without ``size``."""
+    s = wording.sentences
+    size = lesion.get("size")
+    if isinstance(size, Mapping):
+        volume = size.get("volume_ml")
+        diameters = size.get("diameters_mm")
+        if size.get("source") in ("mask", "grown") and diameters and len(diameters) == 3:
+            long, short, cc = diameters
+            return fill(
+                s["size_axes"],
+                "size_axes",
+                long=_num(long, 0),
+                short=_num(short, 0),
+                craniocaudal=_num(cc, 0),
+                volume_ml=_num(volume, 2),
+            )
+        if size.get("source") == "roi" and volume is not None:
+            return fill(s["size_roi"], "size_roi", volume_ml=_num(volume, 2))
+        return s["size_unknown"]
+    volume, diameter = lesion.get("volume_ml"), lesion.get("max_diameter_mm")
+    if volume is not None and diameter is not None:
+        return fill(s["size"], "size", volume_ml=_num(volume, 2), max_diameter_mm=_num(diameter, 1))
+    if volume is not None:
+        return fill(s["size_volume_only"], "size_volume_only", volume_ml=_num(volume, 2))
+    return s["size_unknown"]
+
+
 def behaviour_sentences(
     lesion: Mapping[str, Any], wording: Wording, phrases: LesionPhrases
 ) -> list[str]:
@@ -360,6 +432,26 @@ def behaviour_sentences(
     return out
 
 
+def not_applied_sentences(
+    lesion: Mapping[str, Any], findings: Mapping[str, Any], wording: Wording, phrases: LesionPhrases
+) -> list[str]:
+    """Why a behaviour reading the grades would suggest is not made: the rule assumes another
+    reference tissue than the lesion's (behaviour.toml ``references``)."""
+    tissue = reference_tissue(lesion, findings)
+    return [
+        _capital(
+            fill(
+                wording.sentences["behaviour_not_applied"],
+                "behaviour_not_applied",
+                phrase=p.phrase,
+                tissues=wording.join(list(p.references)),
+                tissue=tissue,
+            )
+        )
+        for p in phrases.not_applied
+    ]
+
+
 def reference_tissue(lesion: Mapping[str, Any], findings: Mapping[str, Any]) -> str:
     """The tissue of the lesion's reference ROI ("white matter"), else the ROI id."""
     ref = lesion.get("reference")
@@ -369,15 +461,36 @@ def reference_tissue(lesion: Mapping[str, Any], findings: Mapping[str, Any]) -> 
     return str(ref) if ref else "the reference tissue"
 
 
-def display_rows(findings: Mapping[str, Any]) -> list[dict[str, str]]:
-    """The table rows formatted for reading (fixed decimals, signed percentages)."""
+def display_rows(
+    findings: Mapping[str, Any], *, not_assessed: str = NOT_ASSESSED
+) -> list[dict[str, str]]:
+    """The table rows formatted for reading (fixed decimals, signed percentages); a flow void's
+    enhancement and drop cells read ``not_assessed``."""
     out = []
+    flow_voids = {
+        str(lesion.get("id")): lesion
+        for lesion in findings.get("lesions", [])
+        if lesion.get("flow_void") is True
+    }
     for row in table_rows(findings):
         drops = [
             f"{kind} {_num(row[f'{kind}_drop_percent'], 0)}"
             for kind in ("fluid", "fat")
             if row[f"{kind}_drop_percent"] is not None
         ]
+        enhancement = (
+            _signed(row["enhancement_percent"]) if row["enhancement_percent"] is not None else ""
+        )
+        drop = ", ".join(drops)
+        void = flow_voids.get(str(row["lesion"]))
+        if void is not None:
+            if (void.get("enhancement") or {}).get("post") == row["role"]:
+                enhancement = not_assessed
+            if any(
+                (flag or {}).get("to") == row["role"]
+                for flag in (void.get("suppression") or {}).values()
+            ):
+                drop = not_assessed
         out.append(
             {
                 "lesion": str(row["lesion"]),
@@ -388,10 +501,8 @@ def display_rows(findings: Mapping[str, Any]) -> list[dict[str, str]]:
                 "median": _num(row["median"], 1) if row["median"] is not None else "",
                 "ratio": _num(row["ratio"], 2) if row["ratio"] is not None else "",
                 "grade": str(row["grade"] or ""),
-                "enhancement": _signed(row["enhancement_percent"])
-                if row["enhancement_percent"] is not None
-                else "",
-                "drop": ", ".join(drops),
+                "enhancement": enhancement,
+                "drop": drop,
                 "notes": str(row["notes"] or ""),
             }
         )
@@ -430,9 +541,17 @@ def report_context(
     ``findings`` (header values, case-file text, qc messages) is first made one line without
     control characters (:func:`sigreport.safetext.one_line`): a CR/LF in an AccessionNumber
     cannot add a line to report.txt, nor a NUL reach report.html.
+
+    The keys (docs/outputs.md lists their fields): ``titles``, ``header`` and ``header_lines``
+    (patient, ID, birth date, sex, accession, study date in the lexicon's date format, the
+    series used), ``references`` (reference and control ROIs: site, tissue, per-series medians,
+    control check), ``study``, ``tool``, ``generated``, ``cautions``, ``lesions`` (with
+    ``not_applied``: readings whose rule assumes another reference), ``rows``, ``text_table``,
+    ``qc``, ``qc_prominent``, ``qc_none``, ``series`` (with ``displacement_mm`` and
+    ``rotation_deg``) and ``series_text_table``.
     """
     findings = clean_strings(findings)
-    rows = display_rows(findings)
+    rows = display_rows(findings, not_assessed=wording.formats.get("not_assessed", NOT_ASSESSED))
     lesions = []
     for lesion in findings.get("lesions", []):
         lesion_id = str(lesion.get("id"))
@@ -451,6 +570,7 @@ def report_context(
                 "sentences": sentences,
                 "paragraph": " ".join(sentences),
                 "behaviours": behaviour_sentences(lesion, wording, own),
+                "not_applied": not_applied_sentences(lesion, findings, wording, own),
                 "reference_tissue": reference_tissue(lesion, findings),
                 "rows": [r for r in rows if r["lesion"] == lesion_id],
             }
@@ -487,6 +607,12 @@ def report_context(
                 if entry.get("measured", by_role.get(str(entry.get("role"))) is entry)
                 else "no",
                 "alignment": str(alignment.get("method", "")),
+                "displacement_mm": _num(alignment.get("displacement_mm"), 1)
+                if alignment.get("displacement_mm") is not None
+                else "",
+                "rotation_deg": _num(alignment.get("rotation_deg"), 1)
+                if alignment.get("rotation_deg") is not None
+                else "",
             }
         )
     study = findings.get("study") or {}
@@ -496,8 +622,27 @@ def report_context(
          r["enhancement"], r["drop"], r["notes"]]
         for r in rows
     ]  # fmt: skip
+    header = header_block(findings, wording)
     return {
         "titles": wording.titles,
+        "header": header,
+        "header_lines": [f"{label}: {value}" for label, value in header["items"]],
+        "references": reference_entries(findings, wording),
+        "series_text_table": text_table(
+            ["Role", "Series", "Measured", "Aligned", "Moved mm", "Rotated deg", "Description"],
+            [
+                [
+                    e["role"],
+                    e["series_number"],
+                    e["measured"],
+                    e["alignment"],
+                    e["displacement_mm"],
+                    e["rotation_deg"],
+                    e["description"],
+                ]
+                for e in series
+            ],
+        ),
         "study": {k: "" if v is None else str(v) for k, v in study.items()},
         "tool": f"{tool.get('name', 'sigreport')} {tool.get('version', '')}".strip(),
         "generated": str(findings.get("generated") or ""),
@@ -514,6 +659,120 @@ def report_context(
         "qc_none": wording.qc["none"],
         "series": series,
     }
+
+
+def format_date(value: Any, fmt: str) -> str:
+    """A DICOM DA value (YYYYMMDD) as the lexicon's date format (wording.toml ``[formats]
+    date``, strftime codes); the value as it stands when it is not a valid date, "" when
+    missing."""
+    text = "" if value is None else str(value).strip()
+    if len(text) == 8 and text.isdigit():
+        try:
+            return _dt.date(int(text[:4]), int(text[4:6]), int(text[6:])).strftime(fmt)
+        except ValueError:
+            return text
+    return text
+
+
+def person_name(value: Any) -> str:
+    """A DICOM PN value ("Family^Given^Middle^Prefix^Suffix", PS3.5 6.2) as it is read:
+    "Family, Given Middle"; the alphabetic group only (before any "=")."""
+    text = "" if value is None else str(value).split("=")[0].strip()
+    if "^" not in text:
+        return text
+    parts = [p.strip() for p in text.split("^")] + [""] * 5
+    family, given, middle, prefix, suffix = parts[:5]
+    first = " ".join(p for p in (prefix, given, middle) if p)
+    name = f"{family}, {first}" if family and first else family or first
+    return f"{name} {suffix}".strip() if suffix else name
+
+
+def header_block(findings: Mapping[str, Any], wording: Wording) -> dict[str, Any]:
+    """The header of the human reports: patient name, ID, birth date, sex, accession, study
+    date (the lexicon's date format) and the series used, as ``items`` (label, value) pairs in
+    that order (empty values left out) and as named fields."""
+    study = findings.get("study") or {}
+    fmt = wording.formats.get("date") or "%Y-%m-%d"
+    used = [
+        f"{e.get('role')} (series {e.get('series_number')})"
+        if e.get("series_number") is not None
+        else str(e.get("role"))
+        for e in sorted(
+            findings.get("series", []),
+            key=lambda e: (role_sort_key(str(e.get("role"))), e.get("series_number") or 0),
+        )
+        if e.get("measured")
+    ]
+    fields = {
+        "patient_name": person_name(study.get("patient_name")),
+        "patient_id": str(study.get("patient_id") or ""),
+        "birth_date": format_date(study.get("birth_date"), fmt),
+        "sex": str(study.get("sex") or ""),
+        "accession": str(study.get("accession_number") or ""),
+        "study_date": format_date(study.get("study_date"), fmt),
+        "series_used": ", ".join(used),
+    }
+    return {
+        **fields,
+        "items": [(wording.header.get(k, k), v) for k, v in fields.items() if v],
+    }
+
+
+def reference_entries(findings: Mapping[str, Any], wording: Wording) -> list[dict[str, Any]]:
+    """The reference and control ROIs for the reader: id, kind, site, tissue, the median on
+    each series (reading order) and, for a control, its suppression check, with one sentence
+    each (wording.toml ``reference_line`` / ``control_line``)."""
+    s = wording.sentences
+    out = []
+    for roi in findings.get("rois", []):
+        medians = roi.get("medians") or {}
+        values = [
+            {"role": str(role), "role_name": wording.role_name(str(role)),
+             "value": _num(medians[role], 1) if medians[role] is not None else "not measured"}
+            for role in ordered_roles(medians)
+        ]  # fmt: skip
+        medians_text = ", ".join(f"{v['role']} {v['value']}" for v in values) or "not measured"
+        check = roi.get("check")
+        check_text = ""
+        if isinstance(check, Mapping):
+            kind = str(check.get("kind") or "")
+            pieces = {
+                "kind": kind,
+                "drop": _num(check.get("drop_percent"), 0),
+                "from": wording.role_name(str(check.get("from") or "")),
+                "to": wording.role_name(str(check.get("to") or "")),
+            }
+            if check.get("passed") is True:
+                check_text = fill(s["control_passed"], "control_passed", **pieces)
+            elif check.get("passed") is False:
+                check_text = fill(s["control_failed"], "control_failed", **pieces)
+            else:
+                check_text = fill(s["control_unchecked"], "control_unchecked", **pieces)
+        site = str(roi.get("site") or "")
+        values_for_line = {
+            "id": str(roi.get("id")),
+            "kind": str(roi.get("kind")),
+            "tissue": str(roi.get("tissue") or "unnamed tissue"),
+            "site": f", {site}" if site else "",
+            "medians": medians_text,
+        }
+        if roi.get("kind") == "control":
+            sentence = fill(s["control_line"], "control_line", check=check_text, **values_for_line)
+        else:
+            sentence = fill(s["reference_line"], "reference_line", **values_for_line)
+        out.append(
+            {
+                "id": values_for_line["id"],
+                "kind": values_for_line["kind"],
+                "site": site,
+                "tissue": values_for_line["tissue"],
+                "medians": values,
+                "medians_text": medians_text,
+                "check": check_text,
+                "sentence": sentence.strip(),
+            }
+        )
+    return out
 
 
 def render_text(context: Mapping[str, Any], site: Path | str | None = None) -> tuple[str, str]:

@@ -5,7 +5,13 @@ study index -> series roles -> volumes -> [ROIs] -> alignment -> measurements
 
 from sigreport.rois.case import load_case
 from sigreport.rois.masks import ContourRegion, GridRegion, load_mask_region
-from sigreport.rois.propagate import RoiSample, max_diameter_mm, sample_region, volume_ml
+from sigreport.rois.propagate import (
+    RoiSample,
+    axial_diameters_mm,
+    max_diameter_mm,
+    sample_region,
+    volume_ml,
+)
 from sigreport.rois.regions import (
     BoxRegion,
     EllipsoidRegion,
@@ -29,5 +35,6 @@ __all__ = [
     "RoiSample",
     "sample_region",
     "volume_ml",
+    "axial_diameters_mm",
     "max_diameter_mm",
 ]

@@ -367,13 +367,20 @@ def _parse_roles(raw: Any, problems: _Problems) -> dict[Role, int | str]:
         if key not in names:
             problems.add("[roles]", f"unknown role {key!r}; expected one of {_choices(names)}")
             continue
+        if isinstance(value, float) and value.is_integer() and value >= 0:
+            value = int(value)  # FLAIR = 4.0 is series 4
+        elif isinstance(value, str) and value.strip().isdigit():
+            value = int(value.strip())  # FLAIR = "4" is series 4 (a UID always has a dot)
+        elif isinstance(value, str):
+            value = value.strip()
         if isinstance(value, bool) or not (
-            (isinstance(value, int) and value >= 0) or (isinstance(value, str) and value.strip())
+            (isinstance(value, int) and value >= 0) or (isinstance(value, str) and value)
         ):
+            shown = repr(value) if isinstance(value, float) else _show(value)
             problems.add(
                 "[roles]",
-                f"{key} must be a series number (integer) or a SeriesInstanceUID (string), "
-                f"got {_show(value)}",
+                f"{key} must be a series number (a whole number such as 4) or a "
+                f"SeriesInstanceUID (text), got {shown}",
             )
             continue
         roles[Role(key)] = value

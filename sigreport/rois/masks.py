@@ -16,6 +16,7 @@ Every mask becomes a physical-space region (:class:`sigreport.rois.space.Region`
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -266,8 +267,10 @@ def load_label_image(path: Path, *, roi_id: str, label: int | None = None) -> Gr
     try:
         image = sitk.ReadImage(str(path))
     except RuntimeError as exc:
-        first = str(exc).strip().splitlines()[0] if str(exc).strip() else "unknown error"
-        raise InputError(f"mask file {path}: not a readable label image ({first})") from None
+        raise InputError(
+            f"ROI {roi_id}: mask file {path} is not an image SimpleITK can read as a label "
+            f"image (NIfTI, NRRD, MHA...): {_reader_reason(exc)}"
+        ) from None
     if image.GetDimension() != 3 or image.GetNumberOfComponentsPerPixel() != 1:
         raise InputError(
             f"mask file {path}: a label image must be 3D with one value per voxel, got "
@@ -494,3 +497,13 @@ def _pick_number(
         problem = f"no {noun[0]}" if not matches else f"several {noun[1]}"
         raise InputError(f"{where}: {problem} {verb} {wanted!r}; has {listing}")
     return matches[0]
+
+
+def _reader_reason(exc: Exception) -> str:
+    """The reader's reason without SimpleITK's C++ source location ("...sitkImageReaderBase.cxx:97:
+    sitk::ERROR: Unable to determine ImageIO reader for ...")."""
+    text = " ".join(str(exc).split())
+    if "sitk::ERROR:" in text:
+        text = text.split("sitk::ERROR:", 1)[1].strip()
+    text = re.sub(r"\S+\.(cxx|cpp|hxx|h|txx)(:\d+)?:?", "", text).strip()
+    return text or "unknown format"

@@ -358,3 +358,54 @@ def max_diameter_mm(sample: RoiSample, image: sitk.Image, *, max_exact_points: i
     cosines = np.abs(direction.T @ u)
     chord = float(np.min(spacing[cosines > 1e-12] / cosines[cosines > 1e-12]))
     return math.sqrt(best) + chord
+
+
+def axial_diameters_mm(sample: RoiSample, image: sitk.Image) -> tuple[float, float, float]:
+    """(long, short, craniocaudal) size of the ROI in the patient's axial plane, in mm.
+
+    Voxel centres are taken to patient coordinates (LPS; DICOM PS3.3 C.7.6.2.1.1) and binned
+    into axial slabs one voxel-footprint thick along patient z. On the slab with the most voxels
+    (the best slice; ties: the one nearest the ROI's centre), ``long`` is the largest distance
+    between two voxel centres plus the voxel's width along that line, and ``short`` the ROI's
+    width perpendicular to it in the axial plane (extent of the projections plus one voxel
+    width); ``craniocaudal`` is the extent of the centres along patient z plus one voxel's
+    footprint. This follows the common practice of reporting a lesion by its longest axial axis,
+    its longest perpendicular and its craniocaudal extent, whatever the series' orientation.
+    Returns zeros for an empty ROI.
+    """
+    _, spacing, direction, _ = _geometry(image)
+    if sample.n_voxels == 0:
+        return 0.0, 0.0, 0.0
+    zyx = np.argwhere(sample.mask)
+    points = voxel_centres_mm(image, zyx[:, ::-1].astype(np.float64))
+    # A voxel's footprint along each patient axis (the box of its three edge vectors).
+    footprint = np.abs(direction) @ spacing
+    z = points[:, 2]
+    craniocaudal = float(z.max() - z.min() + footprint[2])
+    slab = np.round((z - z.min()) / max(footprint[2], 1e-6)).astype(np.int64)
+    counts = np.bincount(slab)
+    best_count = counts.max()
+    centre = np.round((z.mean() - z.min()) / max(footprint[2], 1e-6))
+    candidates = np.flatnonzero(counts == best_count)
+    best = int(candidates[np.argmin(np.abs(candidates - centre))])
+    plane = points[slab == best][:, :2]
+    if len(plane) > 4000:  # the farthest pair lies among the points extreme along a direction
+        angles = np.linspace(0.0, np.pi, 720, endpoint=False)
+        dirs = np.stack([np.cos(angles), np.sin(angles)], axis=1)
+        proj = plane @ dirs.T
+        keep = np.unique(np.concatenate([proj.argmax(axis=0), proj.argmin(axis=0)]))
+        plane = plane[keep]
+    d = plane[:, None, :] - plane[None, :, :]
+    dist = np.einsum("ijk,ijk->ij", d, d)
+    i, j = np.unravel_index(int(np.argmax(dist)), dist.shape)
+    axis = plane[i] - plane[j]
+    length = float(np.linalg.norm(axis))
+    u = axis / length if length > 0 else np.array([1.0, 0.0])
+    v = np.array([-u[1], u[0]])
+    width_u = abs(u[0]) * footprint[0] + abs(u[1]) * footprint[1]
+    width_v = abs(v[0]) * footprint[0] + abs(v[1]) * footprint[1]
+    slab_points = points[slab == best][:, :2]
+    across = slab_points @ v
+    long = length + float(width_u)
+    short = float(across.max() - across.min()) + float(width_v)
+    return long, short, craniocaudal

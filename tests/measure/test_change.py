@@ -48,7 +48,7 @@ def _lesion(lesion_id, *, volume=1.0, t2=2.0, t1=1.0, post=1.1, enhancing=False,
 
 def _findings(date, lesions, *, tissue="white matter", uid="1.2.3"):
     return {
-        "schema": "sigreport-findings/1",
+        "schema": "sigreport-findings/2",
         "tool": {"name": "sigreport", "version": "0.1.0"},
         "study": {"study_instance_uid": uid, "study_date": date, "accession_number": None},
         "series": [],

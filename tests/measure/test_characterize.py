@@ -133,7 +133,7 @@ def test_missing_pairs_give_null_fields(build, rules):
             "suppressed": None,
         }
     assert list(out["signal"]) == ["T2"]  # a key absent: that role is not in the study
-    assert out["flow_void"] is False
+    assert out["flow_void"] is None  # one series: a flow void is not assessed
     assert "follows-fluid" not in out["behaviour"] and "non-enhancing" not in out["behaviour"]
 
 
@@ -152,6 +152,8 @@ def test_lesion_json_has_exactly_the_contract_keys(build, rules):
         "suppression",
         "flow_void",
         "behaviour",
+        "size",  # sigreport-findings/2 (docs/CHANGES.md)
+        "behaviour_not_applied",
     }
     assert set(out["signal"]["T2"]) == {
         "n_voxels",
@@ -162,6 +164,7 @@ def test_lesion_json_has_exactly_the_contract_keys(build, rules):
         "p95",
         "ratio",
         "grade",
+        "borderline",
     }
     assert out["signal"]["T2"]["grade"] == "hyperintense" and out["signal"]["T2"]["ratio"] == 3.0
     assert out["reference"] == "R1"
@@ -245,7 +248,7 @@ def test_failed_fat_control_warns_and_marks_fat_flags_unreliable(build, rules):
     assert "macroscopic-fat" not in got.behaviour and "t1-bright-not-fat" not in got.behaviour
 
 
-def test_rois_entries_carry_snr(build, rules):
+def test_rois_entries_carry_site_medians_and_snr(build, rules):
     lesion = build.lesion({T1: 200.0, T2: 1800.0})
     study = build.study([lesion, _wm(build, [T1, T2])], noise={T1: 12.0, T2: None})
     result = characterize(study, rules)
@@ -253,8 +256,10 @@ def test_rois_entries_carry_snr(build, rules):
         {
             "id": "R1",
             "kind": "reference",
+            "site": None,
             "tissue": "white matter",
             "volume_ml": 0.5,
+            "medians": {"T1": 600.0, "T2": 600.0},  # per series (sigreport-findings/2)
             # snr = reference median / Gaussian noise sigma: 600 / 12
             "snr": {"T1": 50.0, "T2": None},
         },
@@ -304,7 +309,7 @@ def test_dark_tissue_far_above_the_noise_is_not_a_flow_void(build, rules):
 def test_flow_void_needs_two_series_and_ignores_unknown(build, rules):
     one = build.lesion({T2: 30.0})
     got = _one(characterize(build.study([one, _wm(build, [T2])], noise={T2: 15.0}), rules))
-    assert got.flow_void is False
+    assert got.flow_void is None  # not assessed on one series: nothing is asserted
     # An UNKNOWN series (a localizer, say) where the lesion is bright does not count.
     lesion = build.lesion({T1: 40.0, T2: 30.0, Role.UNKNOWN: 900.0})
     ref = build.reference({T1: 600.0, T2: 600.0, Role.UNKNOWN: 300.0})

@@ -12,7 +12,7 @@ from sigreport.errors import InputError
 from sigreport.measure import BehaviourRule, grade_of, grade_phrase, load_rules
 from sigreport.model import EnhancementPattern, Grade
 
-FILES = ("thresholds.toml", "tissues.toml", "behaviour.toml")
+FILES = ("thresholds.toml", "tissues.toml", "behaviour.toml", "grading.toml")
 
 
 def _site(tmp_path: Path, bundled: Path, name: str, edit) -> Path:

@@ -140,7 +140,12 @@ def make_findings(stacks: dict[str, Stack]) -> dict[str, Any]:
             "role_reason": "TR 500 ms, TE 15 ms, no inversion",
             "confidence": 0.9,
             "measured": True,
-            "alignment": {"method": "identity", "translation_mm": [0, 0, 0], "rotation_deg": 0.0},
+            "alignment": {
+                "method": "identity" if role == "T2" else "rigid",
+                "translation_mm": [0, 0, 0] if role == "T2" else [1.0, -2.0, 0.5],
+                "rotation_deg": 0.0 if role == "T2" else 1.25,
+                "displacement_mm": 0.0 if role == "T2" else 2.75,
+            },
         }
         for role in ROLES
     ]
@@ -152,28 +157,43 @@ def make_findings(stacks: dict[str, Stack]) -> dict[str, Any]:
         }
     )  # fmt: skip
     return {
-        "schema": "sigreport-findings/1",
+        "schema": "sigreport-findings/2",
         "tool": {"name": "sigreport", "version": "0.1.0"},
         "study": {
             "study_instance_uid": stacks["T1"].instances[0].sop_instance_uid,
             "study_date": "20261201",
             "accession_number": "ACC123",
+            "patient_name": "Test^Report",
+            "patient_id": "SIGRPT-001",
+            "birth_date": "19700101",
+            "sex": "O",
         },
         "series": series,
         "rois": [
             {
                 "id": "R1",
                 "kind": "reference",
+                "site": "left frontal white matter",
                 "tissue": "white matter",
                 "volume_ml": 0.52,
+                "medians": {"T1": 666.7, "T2": 678.6, "FLAIR": None},
                 "snr": {"T2": 40.0, "T1": 35.5},
             },
             {
                 "id": "C1",
                 "kind": "control",
+                "site": "right lateral ventricle",
                 "tissue": "CSF",
                 "volume_ml": 0.3,
-                "drop_percent": 92.0,
+                "medians": {"T2": 2500.0, "FLAIR": 200.0},
+                "check": {
+                    "kind": "fluid",
+                    "from": "T2",
+                    "to": "FLAIR",
+                    "reference": "R1",
+                    "drop_percent": 92.0,
+                    "passed": True,
+                },
             },
         ],  # fmt: skip
         "lesions": [

@@ -1,5 +1,5 @@
-"""report.md / report.txt: the draft paragraphs in the lexicon's wording, cautions on top and at
-the end, QC warnings prominent, unreliable flags said to be unreliable."""
+"""report.md / report.txt: the draft paragraphs in the lexicon's wording, cautions once on top,
+QC warnings prominent, unreliable flags said to be unreliable."""
 
 from __future__ import annotations
 
@@ -62,15 +62,19 @@ def test_rim_lesion_reports_rim_enhancement_with_percent(texts, kind):
 
 
 @pytest.mark.parametrize("kind", ["md", "txt"])
-def test_cautions_on_top_and_at_the_end(texts, findings, kind):
+def test_cautions_appear_once_on_top(texts, findings, kind):
     text = " ".join(texts[kind].split())
     first_lesion = text.index("L1: ")
     for caution in findings["cautions"]:
         caution = md_escape(caution) if kind == "md" else caution
         assert text.index(caution) < first_lesion
-        assert text.rindex(caution) > text.index(
-            "Quality control".upper() if kind == "txt" else "## Quality control"
-        )
+        assert text.count(caution) == 1
+
+
+def test_markdown_cautions_are_a_list(texts, findings):
+    lines = texts["md"].splitlines()
+    for caution in findings["cautions"]:
+        assert f"- {md_escape(caution)}" in lines
 
 
 @pytest.mark.parametrize("kind", ["md", "txt"])
@@ -82,13 +86,15 @@ def test_qc_warning_is_shown_before_the_findings(texts, kind):
 
 def test_plain_text_wraps_at_100_columns_and_has_no_markup(texts):
     lines = texts["txt"].splitlines()
-    assert max(len(line) for line in lines) <= 100
+    assert max(len(line) for line in lines) <= 100, [line for line in lines if len(line) > 100]
     assert "**" not in texts["txt"] and "| ---" not in texts["txt"] and "###" not in texts["txt"]
 
 
 def test_markdown_escapes_header_and_case_file_values(texts):
     assert XSS not in texts["md"]
-    assert "&lt;script&gt;alert(1)&lt;/script&gt;" in texts["md"]
+    # Backslash escapes (CommonMark): the file reads as text, with no HTML entity in it.
+    assert "\\<script>alert(1)\\</script>" in texts["md"]
+    assert "&lt;" not in texts["md"] and "&gt;" not in texts["md"]
     # One table row per lesion and role, after the header and the rule.
     table = texts["md"].split("## Signal-behaviour table", 1)[1].split("## ", 1)[0]
     assert len([ln for ln in table.splitlines() if re.match(r"\| L\d ", ln)]) == 15
@@ -197,3 +203,66 @@ def test_a_negative_drop_reads_as_brighter_not_as_a_negative_drop(findings):
     block = " ".join(_lesion_block(plain, lesion["id"]).split())
     assert "relatively 42 % brighter than on T2" in block
     assert "drop -42" not in block
+
+
+@pytest.mark.parametrize("kind", ["md", "txt"])
+def test_a_header_block_opens_the_report(texts, kind):
+    head = texts[kind].split("Draft findings".upper() if kind == "txt" else "## Draft findings")[0]
+    # DICOM PN "Test^Report" reads "Test, Report"; dates in the lexicon's format ("%d %b %Y").
+    for line in (
+        "Patient: Test, Report",
+        "Patient ID: SIGRPT-001",
+        "Born: 01 Jan 1970",
+        "Sex: O",
+        "Accession: ACC123",
+        "Study date: 01 Dec 2026",
+        "Series used: T1 (series 2), T1FS (series 3), T2 (series 4), FLAIR (series 5), T1POST",
+    ):
+        assert line in " ".join(head.split())
+    assert head.index("Patient:") < head.index("Draft for review")
+
+
+@pytest.mark.parametrize("kind", ["md", "txt"])
+def test_references_and_controls_are_shown_with_site_medians_and_check(texts, kind):
+    text = " ".join(texts[kind].split())
+    assert (
+        "R1 (reference): white matter, left frontal white matter; median T1 666.7, T2 678.6, FLAIR not measured."
+        in text
+    )
+    assert "C1 (control): CSF, right lateral ventricle; median T2 2500.0, FLAIR 200.0." in text
+    assert "Its fluid suppression check passed (drop 92 % from T2 to FLAIR)." in text
+
+
+def test_the_series_table_shows_how_far_each_series_moved(texts):
+    md_rows = [line for line in texts["md"].splitlines() if line.startswith("| T1 | 2 |")]
+    assert md_rows and "| rigid | 2.8 | 1.2 |" in md_rows[0]  # 2.75 mm, 1.25 deg (one decimal)
+    txt_rows = [line.split() for line in texts["txt"].splitlines() if line.startswith("T1   ")]
+    assert ["T1", "2", "yes", "rigid", "2.8", "1.2", "t1_se_tra"] in txt_rows
+
+
+def test_dates_follow_the_lexicon_format(tmp_path, findings):
+    site = tmp_path / "site"
+    site.mkdir()
+    text = (lexicon.bundled_dir() / "wording.toml").read_text(encoding="utf-8")
+    (site / "wording.toml").write_text(text.replace('date = "%d %b %Y"', 'date = "%d.%m.%Y"'))
+    context = report_context(findings, load_wording(site), _phrases(findings))
+    assert "Study date: 01.12.2026" in context["header_lines"]
+    assert "Born: 01.01.1970" in context["header_lines"]
+
+
+def test_a_site_wording_copy_without_the_later_keys_still_loads(tmp_path):
+    # Keys added after site copies existed fall back to the bundled wording.
+    site = tmp_path / "site"
+    site.mkdir()
+    text = (lexicon.bundled_dir() / "wording.toml").read_text(encoding="utf-8")
+    kept = [
+        line
+        for line in text.splitlines()
+        if not line.startswith(("size_axes", "size_roi", "signal_unnormalized", "references ="))
+    ]
+    text = "\n".join(kept).split("# Formats:")[0] + "\n[qc]" + text.split("[qc]")[1]
+    (site / "wording.toml").write_text(text)
+    local = load_wording(site)
+    bundled = load_wording()
+    assert local.sentences["size_axes"] == bundled.sentences["size_axes"]
+    assert local.formats == bundled.formats and local.header == bundled.header

@@ -266,3 +266,18 @@ def test_several_problems_are_reported_together_one_per_line(tmp_path):
         "case.toml: roi[2] (R1): unknown shape 'cube'; expected one of sphere, ellipsoid, box, "
         "mask, seed",
     ]
+
+
+@pytest.mark.parametrize("value", ['"4"', '" 4 "', "4.0", "4"])
+def test_a_role_given_as_digits_or_a_whole_float_is_that_series_number(tmp_path, value):
+    case = load_case(write_case(tmp_path, f"[roles]\nFLAIR = {value}\n" + MINIMAL))
+    assert case.roles == {Role.FLAIR: 4}
+
+
+def test_every_roles_problem_is_reported_at_once(tmp_path):
+    text = "[roles]\nT3 = 4\nFLAIR = 4.5\nT2 = true\n" + MINIMAL
+    with pytest.raises(InputError) as err:
+        load_case(write_case(tmp_path, text))
+    message = str(err.value)
+    assert "unknown role 'T3'" in message and "got 4.5" in message and "got true" in message
+    assert "got 4\n" not in message + "\n"  # 4.5 is never shown as 4
