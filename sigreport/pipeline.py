@@ -180,7 +180,11 @@ def choose_measured(
                     f"{_series_name(stack)} not measured: role unknown ({stack.role_reason})",
                 )
             )
-        elif stack.role_source == "inferred" and stack.confidence < DOUBTFUL_ROLE_CONFIDENCE:
+        elif (
+            stack.role_source == "inferred"
+            and stack.confidence is not None
+            and stack.confidence < DOUBTFUL_ROLE_CONFIDENCE
+        ):
             notes.append(
                 QcNote(
                     QcLevel.WARNING,
@@ -538,7 +542,9 @@ def analyze_case(
         qc,
         cautions=lexicon.cautions,
     )
-    key_slices = build_key_slices(case, images, measurement.samples, plan.measured)
+    key_slices = build_key_slices(
+        case, images, measurement.samples, plan.measured, anchor=plan.anchor_role
+    )
     return Analysis(
         findings=findings,
         key_slices=tuple(key_slices),

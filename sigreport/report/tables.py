@@ -77,7 +77,9 @@ def table_rows(findings: Mapping[str, Any]) -> list[dict[str, Any]]:
                     else:
                         notes.append("not enhancing")
                 if enhancement.get("raw_percent") is not None:
-                    notes.append(f"unnormalized change {enhancement['raw_percent']:+.1f} %")
+                    raw = f"{enhancement['raw_percent']:+.1f}"
+                    raw = "0.0" if float(raw) == 0 else raw  # never "-0.0 %"
+                    notes.append(f"unnormalized change {raw} %")
             if enhancement.get("pre") == role and enhancement.get("percent") is not None:
                 notes.append(f"baseline for {enhancement.get('post')}")
             for kind in ("fluid", "fat"):

@@ -131,13 +131,16 @@ def _capital(sentence: str) -> str:
 def _num(value: Any, digits: int) -> str:
     if value is None or (isinstance(value, float) and not math.isfinite(value)):
         return "n/a"
-    return f"{float(value):.{digits}f}"
+    text = f"{float(value):.{digits}f}"
+    # A value that rounds to zero has no sign: "-0 %" never appears.
+    return text[1:] if text.startswith("-") and float(text) == 0 else text
 
 
 def _signed(value: Any) -> str:
     if value is None:
         return "n/a"
-    return f"{float(value):+.0f}"
+    text = f"{float(value):+.0f}"
+    return "0" if float(text) == 0 else text
 
 
 def lesion_sentences(
