@@ -14,7 +14,7 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 from sigreport.model import LesionPhrases, role_sort_key
-from sigreport.report.tables import series_by_role
+from sigreport.report.tables import roi_medians, series_by_role
 
 __all__ = [
     "alignment_moved",
@@ -200,12 +200,12 @@ def roi_blocks(
     images: Mapping[str, Sequence[Mapping[str, Any]]],
 ) -> list[dict[str, Any]]:
     """The reference and control ROIs as the page shows them: id, kind, site, tissue, volume,
-    the per-series medians (``rois[].medians`` when findings carry them, findings schema 2) and
+    the per-series medians (:func:`~sigreport.report.tables.roi_medians`, findings schema 2) and
     signal-to-noise, the control check's result, and the ROI's key image entries."""
     out = []
     for roi in findings.get("rois", []):
         roi_id = str(roi.get("id"))
-        medians = roi.get("medians") or {}
+        medians = roi_medians(roi)
         snr = roi.get("snr") or {}
         per_role = []
         for role in sorted(set(medians) | set(snr), key=role_sort_key):

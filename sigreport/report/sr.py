@@ -22,7 +22,7 @@ from pydicom.sr.coding import Code
 
 from sigreport.model import InstanceRef, KeySlice, Stack
 from sigreport.report.sites import SiteTable, load_sites
-from sigreport.report.tables import ordered_roles
+from sigreport.report.tables import ordered_roles, roi_medians
 
 PRIVATE_SCHEME = "99SIGRPT"
 PRIVATE_SCHEME_NAME = "sigreport private concepts"
@@ -476,7 +476,7 @@ def _roi_group(
         measurements.append(
             hd.sr.Measurement(name=codes.SCT.Volume, value=float(roi["volume_ml"]), unit=UNIT_ML)
         )
-    medians: Mapping[str, Any] = roi.get("medians") or {}
+    medians: Mapping[str, Any] = roi_medians(roi)
     snr: Mapping[str, Any] = roi.get("snr") or {}
     for role in ordered_roles({**snr, **medians}):
         image = _image_ref(roi_id, role, key_refs, sources)

@@ -116,3 +116,19 @@ def _cell(value: Any) -> Any:
     if isinstance(value, str) and value[:1] in ("=", "+", "-", "@", "\t", "\r"):
         return "'" + value
     return value
+
+
+def roi_medians(roi: Mapping[str, Any]) -> dict[str, Any]:
+    """A reference or control ROI's median on each series (findings schema 2): its ``medians``
+    (role -> median), or the ``median`` of each role of its ``signal`` statistics; {} when the
+    findings carry neither (schema 1)."""
+    medians = roi.get("medians")
+    if isinstance(medians, Mapping) and medians:
+        return dict(medians)
+    signal = roi.get("signal")
+    if isinstance(signal, Mapping):
+        return {
+            str(role): stats.get("median") if isinstance(stats, Mapping) else None
+            for role, stats in signal.items()
+        }
+    return {}

@@ -172,3 +172,14 @@ def test_series_table_shows_how_far_each_series_moved(page):
 def test_minus_zero_percent_never_appears(page):
     html, text = page
     assert "-0 %" not in text and "-0 %" not in html and "-0.0" not in text
+
+
+def test_reference_medians_read_from_either_schema_2_shape():
+    from sigreport.report.tables import roi_medians
+
+    assert roi_medians({"medians": {"T2": 700.0}}) == {"T2": 700.0}
+    assert roi_medians({"signal": {"T2": {"median": 700.0}, "T1": None}}) == {
+        "T2": 700.0,
+        "T1": None,
+    }
+    assert roi_medians({"snr": {"T2": 40.0}}) == {}
