@@ -268,7 +268,7 @@ class Stack:
     warnings: tuple[str, ...] = ()
     role: Role = Role.UNKNOWN
     role_reason: str = "not inferred"
-    confidence: float = 0.0
+    confidence: float | None = None  # None for UNKNOWN: no role to be sure of
     role_source: str = "inferred"  # "inferred" or "case file"
     # Equal for two stacks whose stored values share one scaling to real-world values
     # (RescaleSlope/Intercept or Real World Value Mapping); None when frames differ.
@@ -520,6 +520,12 @@ class KeySlice:
     pixel_spacing_mm: tuple[float, float]  # (row spacing, column spacing)
     slice_index: int  # 0-based index along the stack
     sop_instance_uid: str | None = None
+    # InstanceNumber (0020,0013) of the slice's image, the "image" number an archive viewer
+    # shows; None when the header has none.
+    instance_number: int | None = None
+    # What the outlined ROI is: "lesion" (with its reference's outline beside it), or
+    # "reference" / "control" (the ROI alone; reference_mask is then None).
+    kind: str = "lesion"
 
 
 # --------------------------------------------------------------------------------------------

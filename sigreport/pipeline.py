@@ -168,7 +168,7 @@ def override_notes(before: StudyIndex, after: StudyIndex) -> list[QcNote]:
             was is None
             or stack.role_source != "case file"
             or was.role in (Role.UNKNOWN, stack.role)
-            or was.confidence < DOUBTFUL_ROLE_CONFIDENCE
+            or (was.confidence or 0.0) < DOUBTFUL_ROLE_CONFIDENCE
         ):
             continue
         notes.append(
@@ -275,7 +275,11 @@ def choose_measured(
                     f"{_series_name(stack)} not measured: role unknown ({stack.role_reason})",
                 )
             )
-        elif stack.role_source == "inferred" and stack.confidence < DOUBTFUL_ROLE_CONFIDENCE:
+        elif (
+            stack.role_source == "inferred"
+            and stack.confidence is not None
+            and stack.confidence < DOUBTFUL_ROLE_CONFIDENCE
+        ):
             notes.append(
                 QcNote(
                     QcLevel.WARNING,
@@ -715,7 +719,9 @@ def analyze_case(
         qc,
         cautions=lexicon.cautions,
     )
-    key_slices = build_key_slices(plan.case, images, measurement.samples, plan.measured)
+    key_slices = build_key_slices(
+        plan.case, images, measurement.samples, plan.measured, anchor=plan.anchor_role
+    )
     return Analysis(
         findings=findings,
         key_slices=tuple(key_slices),

@@ -95,7 +95,10 @@ _SCHEMA: dict[str, dict[str, str]] = {
         "min_planes": "number",
     },
     "confidence": {
+        "stated": "unit",
         "clean": "unit",
+        "near_edge": "unit",
+        "edge_margin": "unit",
         "partial": "unit",
         "tie_break": "unit",
         "unknown_sequence_factor": "unit",
@@ -206,7 +209,7 @@ class _Evidence:
 
 def infer_role(
     acq: Acquisition, description: str = "", *, site_lexicon: Path | None = None
-) -> tuple[Role, str, float]:
+) -> tuple[Role, str, float | None]:
     """Infer a series' role from its acquisition header.
 
     Parameters
@@ -224,19 +227,30 @@ def infer_role(
     tuple
         ``(role, reason, confidence)``: the role, a one-line reason naming the values used
         (e.g. ``"spin echo, TR 4000 ms, TE 100 ms, no inversion, no fat saturation"``) and a
-        confidence in [0, 1]. Ambiguous or unsupported settings give ``Role.UNKNOWN`` with the
-        reason.
+        confidence in [0, 1] that says how the role was decided (lexicon ``[confidence]``,
+        docs/ingestion.md): a standard attribute naming it, physics well inside its bands,
+        physics near a band edge, a missing value, the description breaking a tie. Ambiguous or
+        unsupported settings give ``Role.UNKNOWN`` with the reason and no confidence (None):
+        there is no role to be sure of.
     """
     bands = load_role_bands(site_lexicon)
     return _infer(acq, description or "", bands)
 
 
-def _infer(acq: Acquisition, description: str, b: RoleBands) -> tuple[Role, str, float]:
+def _infer(acq: Acquisition, description: str, b: RoleBands) -> tuple[Role, str, float | None]:
+    """:func:`_decide`, with no confidence for UNKNOWN."""
+    role, reason, confidence = _decide(acq, description, b)
+    return role, reason, (None if role is Role.UNKNOWN else confidence)
+
+
+def _decide(acq: Acquisition, description: str, b: RoleBands) -> tuple[Role, str, float]:
     """The order of decisions (docs/ingestion.md, Roles): what the image is (localizer, screen
     capture, non-magnitude, Dixon / chemical-shift / SWI / ADC / derived ImageType values) ->
     Enhanced MR AcquisitionContrast -> diffusion -> physics (TR, TE, TI, flip, sequence) ->
     description as a tie-break -> fat suppression and contrast modifiers."""
+    conf_stated = b.number("confidence", "stated")
     conf_clean = b.number("confidence", "clean")
+    conf_edge = b.number("confidence", "near_edge")
     conf_partial = b.number("confidence", "partial")
     conf_tie = b.number("confidence", "tie_break")
     image_type = {t.upper() for t in acq.image_type}
@@ -259,7 +273,7 @@ def _infer(acq: Acquisition, description: str, b: RoleBands) -> tuple[Role, str,
     # What the image is, by its ImageType values (before the derived rule: Dixon, SWI and ADC
     # images are often DERIVED).
     if image_type & b.words("image_type", "adc"):
-        return Role.ADC, f"ADC map (ImageType {shown})", conf_clean
+        return Role.ADC, f"ADC map (ImageType {shown})", conf_stated
     unmeasurable = image_type & b.words("image_type", "unmeasurable")
     if unmeasurable:
         kinds = ", ".join(sorted(unmeasurable))
@@ -272,7 +286,7 @@ def _infer(acq: Acquisition, description: str, b: RoleBands) -> tuple[Role, str,
         ("swi", Role.SWI),
     ):
         if flavour & b.words("image_type", key):
-            return role, f"{_ROLE_NAMES[role]} (ImageType {shown})", conf_clean
+            return role, f"{_ROLE_NAMES[role]} (ImageType {shown})", conf_stated
     diffusion_type = bool(image_type & b.words("image_type", "diffusion"))
     if "DERIVED" in image_type and not diffusion_type:
         if _evidence(acq, b).family == "echo planar" and _mentions(
@@ -307,7 +321,7 @@ def _infer(acq: Acquisition, description: str, b: RoleBands) -> tuple[Role, str,
                 f"{directionality}): not a trace",
                 conf_clean,
             )
-        return Role.DWI, f"diffusion weighted, b {_fmt(bval)} s/mm2 ({ev.family})", conf_clean
+        return Role.DWI, f"diffusion weighted, b {_fmt(bval)} s/mm2 ({ev.family})", conf_stated
     if diffusion_stated and bval is None:
         return Role.DWI, "diffusion image (ImageType), b-value not in header", conf_partial
     if bval is not None and (diffusion_stated or ev.family == "echo planar"):
@@ -345,13 +359,29 @@ def _infer(acq: Acquisition, description: str, b: RoleBands) -> tuple[Role, str,
         if stated_role is None:
             return Role.UNKNOWN, f"{physics}: TR/TE missing from the header", conf_clean
         candidates, note = [stated_role], "TR/TE missing from the header"
+        matched: list[tuple[str, float, tuple[float, float]]] = []
     else:
-        candidates, note = _candidates(acq, ev, b)
+        matched = []
+        candidates, note = _candidates(acq, ev, b, matched)
     confidence = conf_clean if not note else conf_partial
+    margin = b.number("confidence", "edge_margin")
+    edges = []
+    for name, value, band in matched:
+        edge = _near_edge(value, band, margin)
+        if edge is not None:
+            unit = "deg" if name == "flip" else "ms"
+            edges.append(f"{name} {_fmt(value)} {unit} near the band edge {_fmt(edge)} {unit}")
+    if edges and not note and len(candidates) == 1:
+        physics_edges = "; " + ", ".join(edges)
+        confidence = conf_edge
+    else:
+        physics_edges = ""
     if stated_role is not None:
         # The standard attribute decides over the physics; the physics is reported beside it.
         if stated_role in candidates:
             physics += f"; AcquisitionContrast {acq.acquisition_contrast}"
+            confidence = conf_stated
+            physics_edges = ""
         else:
             alone = " or ".join(r.value for r in candidates) if candidates else note
             physics += f"; AcquisitionContrast {acq.acquisition_contrast} (physics alone: {alone})"
@@ -376,6 +406,7 @@ def _infer(acq: Acquisition, description: str, b: RoleBands) -> tuple[Role, str,
         role = candidates[0]
         if note:
             physics += f" ({note})"
+        physics += physics_edges
 
     if role == Role.T2STAR and _mentions(description, b.words("description", "SWI")):
         role = Role.SWI
@@ -514,8 +545,24 @@ def _evidence(acq: Acquisition, b: RoleBands) -> _Evidence:
     )
 
 
-def _candidates(acq: Acquisition, ev: _Evidence, b: RoleBands) -> tuple[list[Role], str]:
-    """Roles the physics allows, and a note when the match is partial (or why none fits)."""
+def _near_edge(value: float, band: tuple[float, float], margin: float) -> float | None:
+    """The edge of ``band`` that ``value`` lies within ``margin`` of (a fraction of the edge's
+    own value), else None: a TR of 760 ms is near the 800 ms edge at a margin of 0.1; a TE of
+    2 ms is not near a 0 ms edge."""
+    for edge in band:
+        if abs(value - edge) <= margin * abs(edge):
+            return edge
+    return None
+
+
+def _candidates(
+    acq: Acquisition,
+    ev: _Evidence,
+    b: RoleBands,
+    matched: list[tuple[str, float, tuple[float, float]]] | None = None,
+) -> tuple[list[Role], str]:
+    """Roles the physics allows, and a note when the match is partial (or why none fits).
+    Each band a value fell in is appended to ``matched`` as (name, value, band)."""
     tr, te, ti, flip = (
         acq.repetition_time_ms,
         acq.echo_time_ms,
@@ -523,20 +570,28 @@ def _candidates(acq: Acquisition, ev: _Evidence, b: RoleBands) -> tuple[list[Rol
         acq.flip_angle_deg,
     )
     assert te is not None
+
+    def _in(name: str, value: float | None, band: tuple[float, float]) -> bool:
+        if value is None or not band[0] <= value <= band[1]:
+            return False
+        if matched is not None:
+            matched.append((name, float(value), band))
+        return True
+
     if ev.inversion:
         if ti is None or ti <= 0:
             # Private or missing TI (vendor quirk): the TE narrows it, the description decides.
-            if _in(te, b.band("inversion", "flair_te_ms")):
+            if _in("TE", te, b.band("inversion", "flair_te_ms")):
                 return [Role.FLAIR, Role.STIR], "inversion time not in the header"
             return [Role.STIR, Role.T1], "inversion time not in the header"
-        if _in(ti, b.band("inversion", "stir_ti_ms")):
+        if _in("TI", ti, b.band("inversion", "stir_ti_ms")):
             return [Role.STIR], ""  # fat null: STIR suppresses fat by itself
-        if _in(ti, b.band("inversion", "flair_ti_ms")):
-            if _in(te, b.band("inversion", "flair_te_ms")):
+        if _in("TI", ti, b.band("inversion", "flair_ti_ms")):
+            if _in("TE", te, b.band("inversion", "flair_te_ms")):
                 return [Role.FLAIR], ""
             return [], "fluid-nulling TI with a short TE fits no role"
-        if _in(ti, b.band("inversion", "t1_prep_ti_ms")):
-            if _in(te, b.band("inversion", "t1_prep_te_ms")):
+        if _in("TI", ti, b.band("inversion", "t1_prep_ti_ms")):
+            if _in("TE", te, b.band("inversion", "t1_prep_te_ms")):
                 return [Role.T1], ""  # MPRAGE-like or T1-FLAIR: T1 weighted
             return [], "T1-preparation TI with a long TE fits no role"
         return [], "TI fits neither fat nulling, T1 preparation nor fluid nulling"
@@ -545,29 +600,30 @@ def _candidates(acq: Acquisition, ev: _Evidence, b: RoleBands) -> tuple[list[Rol
         seqvar = {v.upper() for v in acq.sequence_variant}
         if ("SS" in seqvar or "TRSS" in seqvar) and "SP" not in seqvar:
             return [], "steady-state free precession (mixed T2/T1 contrast)"
-        if _in(te, b.band("gradient_echo", "t2star_te_ms")):
+        if _in("TE", te, b.band("gradient_echo", "t2star_te_ms")):
             if flip is None:
                 return [Role.T2STAR], "flip angle not given"
-            if _in(flip, b.band("gradient_echo", "t2star_flip_deg")):
+            if _in("flip", flip, b.band("gradient_echo", "t2star_flip_deg")):
                 return [Role.T2STAR], ""
             return [], "long TE with a large flip angle fits no role"
-        if _in(te, b.band("gradient_echo", "t1_te_ms")):
-            if tr is not None and not _in(tr, b.band("gradient_echo", "t1_tr_ms")):
+        if _in("TE", te, b.band("gradient_echo", "t1_te_ms")):
+            if tr is not None and not _in("TR", tr, b.band("gradient_echo", "t1_tr_ms")):
                 return [], "short-TE gradient echo with a long TR (proton density like)"
             if flip is None:
                 return [Role.T1], "flip angle not given"
-            if _in(flip, b.band("gradient_echo", "t1_flip_deg")):
+            if _in("flip", flip, b.band("gradient_echo", "t1_flip_deg")):
                 return [Role.T1], ""
             return [], "short-TE gradient echo with a small flip (proton density like)"
         return [], "TE between the T1 and T2* gradient-echo bands"
 
     # Spin echo (and sequences of unknown type, judged by spin-echo bands).
     assert tr is not None
-    short_tr = _in(tr, b.band("spin_echo", "t1_tr_ms")) or tr < b.band("spin_echo", "t1_tr_ms")[0]
-    long_tr = _in(tr, b.band("spin_echo", "long_tr_ms"))
-    short_te = _in(te, b.band("spin_echo", "t1_te_ms"))
-    pd_te = _in(te, b.band("spin_echo", "pd_te_ms"))
-    long_te = _in(te, b.band("spin_echo", "t2_te_ms"))
+    # Below the T1 band is still a short TR: only the band's upper edge is a boundary.
+    short_tr = _in("TR", tr, (min(0.0, tr), b.band("spin_echo", "t1_tr_ms")[1]))
+    long_tr = _in("TR", tr, b.band("spin_echo", "long_tr_ms"))
+    short_te = _in("TE", te, b.band("spin_echo", "t1_te_ms"))
+    pd_te = _in("TE", te, b.band("spin_echo", "pd_te_ms"))
+    long_te = _in("TE", te, b.band("spin_echo", "t2_te_ms"))
     if short_tr and short_te:
         return [Role.T1], ""
     if long_tr and long_te:
@@ -597,7 +653,6 @@ def refine_roles_across_stacks(stacks: list[Stack], bands: RoleBands) -> list[St
       the b-value kept (docs/ingestion.md, Roles).
     """
     out = list(stacks)
-    conf_clean = bands.number("confidence", "clean")
     by_series: dict[str, list[int]] = {}
     for i, stack in enumerate(out):
         by_series.setdefault(stack.series_instance_uid, []).append(i)
@@ -629,7 +684,7 @@ def refine_roles_across_stacks(stacks: list[Stack], bands: RoleBands) -> list[St
                         f"{_fmt(acqs[0].repetition_time_ms or 0)} ms, TE "
                         f"{_fmt(acqs[0].echo_time_ms or 0)} ms"
                     ),
-                    confidence=conf_clean,
+                    confidence=None,
                 )
     traces = [i for i, s in enumerate(out) if s.role == Role.DWI and s.acquisition.b_value]
     if traces:
@@ -644,7 +699,7 @@ def refine_roles_across_stacks(stacks: list[Stack], bands: RoleBands) -> list[St
                         f"diffusion trace b {_fmt(bval)} s/mm2: DWI is the study's highest-b "
                         f"trace (b {_fmt(highest)})"
                     ),
-                    confidence=conf_clean,
+                    confidence=None,
                 )
     return out
 

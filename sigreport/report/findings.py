@@ -82,7 +82,7 @@ def build_findings(
             "stack": stack.stack,
             "description": stack.description,
             "role_reason": stack.role_reason,
-            "confidence": round(float(stack.confidence), 3),
+            "confidence": None if stack.confidence is None else round(float(stack.confidence), 3),
             "measured": role is not None,
         }
         if role is not None:

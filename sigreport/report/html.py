@@ -10,7 +10,9 @@ from typing import Any
 
 from markupsafe import Markup
 
+from sigreport.model import LesionPhrases
 from sigreport.report.images import lesion_points, ratio_plot_svg
+from sigreport.report.layout import header_block, roi_blocks, series_rows, summary_table
 from sigreport.report.tables import ordered_roles, series_by_role
 from sigreport.report.text import environment, render_template
 from sigreport.report.wording import Wording
@@ -30,33 +32,47 @@ def render_html(
     site: Path | str | None = None,
     *,
     iso_band: tuple[float, float],
+    phrases: Mapping[str, LesionPhrases] | None = None,
 ) -> str:
-    """The page. ``images`` maps a lesion id to its key images in display order, each a dict
-    with ``png`` (bytes), ``role`` and ``file`` (the PNG's name under images/); ``iso_band`` is
-    the isointense band of the grade thresholds (:attr:`sigreport.lexicon_tables.Lexicon.iso_band`)
-    shaded on each ratio plot. Strings of ``findings`` are cleaned as in
-    :func:`~sigreport.report.text.report_context`."""
+    """The page, laid out for the reading room (docs/outputs.md, report.html): header block,
+    cautions, summary table, then each lesion's text, key images and ratio plot, the reference
+    and control ROIs, the detailed per-series table, quality control and the series table.
+
+    ``images`` maps an ROI id to its key images in display order, each a dict with ``png``
+    (bytes), ``role``, ``file`` (the PNG's name under images/) and optionally
+    ``instance_number`` (the image number an archive viewer shows); ``iso_band`` is the
+    isointense band of the grade thresholds (:attr:`sigreport.lexicon_tables.Lexicon.iso_band`)
+    shaded on each ratio plot; ``phrases`` the words characterization chose per lesion (the
+    summary table's graded words; without them, the plain grade). Strings of ``findings`` are
+    cleaned as in :func:`~sigreport.report.text.report_context`."""
     findings = clean_strings(findings)
     series = series_by_role(findings)
     by_id = {str(lesion.get("id")): lesion for lesion in findings.get("lesions", [])}
-    lesions = []
-    for lesion in context["lesions"]:
-        source = by_id.get(lesion["id"], {})
-        signal = source.get("signal") or {}
+
+    def strip_of(roi_id: str) -> list[dict[str, str]]:
         strip = []
-        for item in images.get(lesion["id"], ()):
+        for item in images.get(roi_id, ()):
             entry = series.get(item["role"], {})
             number = entry.get("series_number")
+            instance = item.get("instance_number")
             strip.append(
                 {
                     "src": data_uri(item["png"]),
                     "role": item["role"],
                     "role_name": wording.role_name(item["role"]),
                     "series": "" if number is None else str(number),
+                    "image": "" if instance is None else str(instance),
                     "description": str(entry.get("description") or ""),
                     "file": item["file"],
                 }
             )
+        return strip
+
+    lesions = []
+    for lesion in context["lesions"]:
+        source = by_id.get(lesion["id"], {})
+        signal = source.get("signal") or {}
+        strip = strip_of(lesion["id"])
         # The SVG is built from numbers and escaped labels only (images.ratio_plot_svg).
         plot = Markup(
             ratio_plot_svg(
@@ -66,5 +82,14 @@ def render_html(
             )
         )
         lesions.append({**lesion, "images": strip, "plot": plot})
+    rois = roi_blocks(findings, {str(r.get("id")): () for r in findings.get("rois", [])})
+    for roi in rois:
+        roi["images"] = strip_of(roi["id"])
+    layout = {
+        "header": header_block(findings),
+        "summary": summary_table(findings, phrases or {}),
+        "rois": rois,
+        "series_moved": series_rows(findings),
+    }
     env = environment(site, autoescape=True)
-    return render_template(env, "report.html.j2", {**context, "lesions": lesions})
+    return render_template(env, "report.html.j2", {**context, **layout, "lesions": lesions})

@@ -16,6 +16,13 @@ from sigreport.model import KeySlice
 
 LESION_COLOUR = (255, 214, 0)  # yellow: the lesion ROI
 REFERENCE_COLOUR = (0, 200, 255)  # cyan: the reference ROI
+CONTROL_COLOUR = (255, 80, 200)  # magenta: a control ROI
+#: The colour of a key slice's own ROI outline, by ``KeySlice.kind``.
+OUTLINE_COLOURS = {
+    "lesion": LESION_COLOUR,
+    "reference": REFERENCE_COLOUR,
+    "control": CONTROL_COLOUR,
+}
 
 _UNSAFE = re.compile(r"[^A-Za-z0-9._-]")
 
@@ -104,7 +111,8 @@ def render_key_image(
     cropped around the lesion (:func:`crop_box`), resampled nearest-neighbour to square pixels
     with about ``target_px`` pixels on the longer side (never more than ``max_upscale`` output
     pixels per input pixel; large crops are shown at their own resolution), the lesion outline
-    in yellow and the reference outline in cyan.
+    in yellow and the reference outline in cyan (a reference or control key slice: its own
+    outline in cyan or magenta, :data:`OUTLINE_COLOURS`).
 
     Raises
     ------
@@ -139,7 +147,7 @@ def render_key_image(
     width = 2 if finest / out_pixel_mm >= 2 else 1
     if reference is not None:
         rgb[outline(reference[grid], width)] = REFERENCE_COLOUR
-    rgb[outline(lesion[grid], width)] = LESION_COLOUR
+    rgb[outline(lesion[grid], width)] = OUTLINE_COLOURS.get(key.kind, LESION_COLOUR)
     return rgb
 
 

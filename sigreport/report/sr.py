@@ -21,7 +21,8 @@ from pydicom.sr.codedict import codes
 from pydicom.sr.coding import Code
 
 from sigreport.model import InstanceRef, KeySlice, Stack
-from sigreport.report.tables import ordered_roles
+from sigreport.report.sites import SiteTable, load_sites
+from sigreport.report.tables import ordered_roles, roi_medians
 
 PRIVATE_SCHEME = "99SIGRPT"
 PRIVATE_SCHEME_NAME = "sigreport private concepts"
@@ -133,6 +134,7 @@ def build_sr(
     *,
     series_number: int = SR_SERIES_NUMBER,
     manufacturer: str = "sigreport",
+    sites: SiteTable | None = None,
 ) -> hd.sr.Comprehensive3DSR:
     """The draft measurement report of ``findings`` as a Comprehensive 3D SR.
 
@@ -146,6 +148,9 @@ def build_sr(
         Role -> the stack measured for that role (its instance paths give the source headers).
     series_number, manufacturer:
         Of the SR series (General Series / General Equipment modules).
+    sites:
+        The lexicon's coded sites (``sites.toml``) for each group's Finding Site; the bundled
+        lexicon's when None.
 
     Raises
     ------
@@ -169,7 +174,12 @@ def build_sr(
     if not sources.datasets:
         raise ValueError('Argument "stacks" holds no source instance to build the SR from.')
 
-    groups = [_lesion_group(lesion, key_refs, sources) for lesion in findings.get("lesions", [])]
+    if sites is None:
+        sites = load_sites()
+    groups = [
+        _lesion_group(lesion, key_refs, sources, sites) for lesion in findings.get("lesions", [])
+    ]
+    groups += [_roi_group(roi, key_refs, sources, sites) for roi in findings.get("rois", [])]
     device = hd.sr.ObserverContext(
         observer_type=codes.DCM.Device,
         observer_identifying_attributes=hd.sr.DeviceObserverIdentifyingAttributes(
@@ -265,6 +275,7 @@ def _lesion_group(
     lesion: Mapping[str, Any],
     key_refs: Mapping[tuple[str, str], InstanceRef],
     sources: _Sources,
+    sites: SiteTable,
 ) -> hd.sr.MeasurementsAndQualitativeEvaluations:
     lesion_id = str(lesion.get("id"))
     site = str(lesion.get("site") or "")
@@ -304,11 +315,11 @@ def _lesion_group(
                     ds.SOPClassUID, ds.SOPInstanceUID, referenced_frame_numbers=_Sources.frames(ref)
                 )
             )
-        method = role_method(role)
-        # The statistics name their series by the method and share the group's source images
-        # (the key slices); only the ratio, the value the grade is read from, references its
-        # key slice itself (TID 300 row 8, TID 320, optional): one reference per lesion and
-        # series instead of six keeps the document small and quick to write.
+        # The image the value was measured on (TID 300 "Source of Measurement", its series in
+        # the evidence and image library) says which series it is: the lesion's key slice on
+        # that series (the key slices only, never every instance); the private concept naming
+        # the role only when there is no image to reference.
+        method = None if images else role_method(role)
         for stat, derivation in DERIVATIONS.items():
             if stats.get(stat) is None:
                 continue
@@ -319,6 +330,7 @@ def _lesion_group(
                     unit=UNIT_NONE,
                     derivation=derivation,
                     method=method,
+                    referenced_images=images,
                 )
             )
         if stats.get("ratio") is not None:
@@ -345,6 +357,9 @@ def _lesion_group(
                 unit=UNIT_PERCENT,
                 method=private(
                     "ENH-PAIR", f"{enhancement.get('post')} against {enhancement.get('pre')}"
+                ),
+                referenced_images=_pair_images(
+                    lesion_id, (enhancement.get("pre"), enhancement.get("post")), key_refs, sources
                 ),
             )
         )
@@ -381,6 +396,9 @@ def _lesion_group(
                     method=private(
                         f"PAIR-{kind.upper()}", f"{flag.get('to')} against {flag.get('from')}"
                     ),
+                    referenced_images=_pair_images(
+                        lesion_id, (flag.get("from"), flag.get("to")), key_refs, sources
+                    ),
                 )
             )
         if flag.get("suppressed") is not None:
@@ -409,9 +427,161 @@ def _lesion_group(
             uid=hd.UID(), identifier=f"{lesion_id} ({site})" if site else lesion_id
         ),
         finding_type=codes.SCT.Lesion,
+        finding_sites=finding_sites(site, sites) or None,
         measurements=measurements or None,
         qualitative_evaluations=evaluations or None,
         source_images=unique_images or None,
+    )
+
+
+# --------------------------------------------------------------------------------------------
+# Coded sites, the reference and control ROIs' own groups, and image references by series
+
+
+def finding_sites(text: str, sites: SiteTable) -> list[hd.sr.FindingSite]:
+    """The TID 1501 Finding Site of a free-text site: the SNOMED CT site the lexicon's
+    ``sites.toml`` matches in ``text``, with its laterality (PS3.16 CID 244: right, left,
+    bilateral) when ``text`` names one side; [] when no site matches."""
+    found = sites.site(text)
+    if found is None:
+        return []
+    side = sites.side(text)
+    return [
+        hd.sr.FindingSite(
+            anatomic_location=found.coded(), laterality=None if side is None else side.coded()
+        )
+    ]
+
+
+def _image_ref(
+    roi_id: str, role: str, key_refs: Mapping[tuple[str, str], InstanceRef], sources: _Sources
+) -> hd.sr.SourceImageForMeasurement | None:
+    ref = key_refs.get((roi_id, role))
+    if ref is None:
+        return None
+    ds = sources.datasets[ref.sop_instance_uid]
+    return hd.sr.SourceImageForMeasurement(
+        ds.SOPClassUID, ds.SOPInstanceUID, referenced_frame_numbers=_Sources.frames(ref)
+    )
+
+
+def _pair_images(
+    roi_id: str,
+    roles: tuple[Any, Any],
+    key_refs: Mapping[tuple[str, str], InstanceRef],
+    sources: _Sources,
+) -> list[hd.sr.SourceImageForMeasurement] | None:
+    """The images of both series of a pair (enhancement, suppression) a value comes from."""
+    refs = [_image_ref(roi_id, str(role), key_refs, sources) for role in roles if role]
+    found = [r for r in refs if r is not None]
+    return found or None
+
+
+ROI_KIND_CONCEPT = private("ROI-KIND", "Region of interest role")
+ROI_KINDS = {
+    "reference": private("REFERENCE-TISSUE", "Reference tissue for normalization"),
+    "control": private("CONTROL-TISSUE", "Control tissue checking the study"),
+}
+CONTROL_PASSED = private("CONTROL-PASSED", "Control check passed")
+SNR_NAME = codes.DCM.SignalToNoiseRatio  # DCM 111787
+
+
+def _roi_group(
+    roi: Mapping[str, Any],
+    key_refs: Mapping[tuple[str, str], InstanceRef],
+    sources: _Sources,
+    sites: SiteTable,
+) -> hd.sr.MeasurementsAndQualitativeEvaluations:
+    """A reference or control ROI as its own measurement group (TID 1501): tracked by id, kind
+    and tissue; finding type and site the tissue's SNOMED CT code (``sites.toml``) with the
+    side its site names; volume, per-series medians (``rois[].medians``, findings schema 2)
+    and signal-to-noise ratios, each referencing the image it was measured on when a key image
+    exists; a control's suppression drop and whether the check passed."""
+    roi_id = str(roi.get("id"))
+    kind = str(roi.get("kind") or "")
+    tissue = str(roi.get("tissue") or "")
+    site = str(roi.get("site") or "")
+    measurements: list[hd.sr.Measurement] = []
+    evaluations: list[hd.sr.QualitativeEvaluation] = []
+    if kind in ROI_KINDS:
+        evaluations.append(hd.sr.QualitativeEvaluation(ROI_KIND_CONCEPT, ROI_KINDS[kind]))
+    if roi.get("volume_ml") is not None:
+        measurements.append(
+            hd.sr.Measurement(name=codes.SCT.Volume, value=float(roi["volume_ml"]), unit=UNIT_ML)
+        )
+    medians: Mapping[str, Any] = roi_medians(roi)
+    snr: Mapping[str, Any] = roi.get("snr") or {}
+    for role in ordered_roles({**snr, **medians}):
+        image = _image_ref(roi_id, role, key_refs, sources)
+        images = [image] if image is not None else None
+        method = None if images else role_method(role)
+        if medians.get(role) is not None:
+            measurements.append(
+                hd.sr.Measurement(
+                    name=codes.DCM.MRSignalIntensity,
+                    value=float(medians[role]),
+                    unit=UNIT_NONE,
+                    derivation=codes.cid7464.Median,
+                    method=method,
+                    referenced_images=images,
+                )
+            )
+        if snr.get(role) is not None:
+            measurements.append(
+                hd.sr.Measurement(
+                    name=SNR_NAME,
+                    value=float(snr[role]),
+                    unit=UNIT_NONE,
+                    method=method,
+                    referenced_images=images,
+                )
+            )
+    check = roi.get("check")
+    if isinstance(check, Mapping):
+        kind_name = str(check.get("kind") or "")
+        if check.get("drop_percent") is not None:
+            measurements.append(
+                hd.sr.Measurement(
+                    name=drop_name(kind_name),
+                    value=float(check["drop_percent"]),
+                    unit=UNIT_PERCENT,
+                    method=private(
+                        f"PAIR-{kind_name.upper()}",
+                        f"{check.get('to')} against {check.get('from')}",
+                    ),
+                    referenced_images=_pair_images(
+                        roi_id, (check.get("from"), check.get("to")), key_refs, sources
+                    ),
+                )
+            )
+        if check.get("passed") is not None:
+            evaluations.append(
+                hd.sr.QualitativeEvaluation(CONTROL_PASSED, _yes_no(bool(check["passed"])))
+            )
+    coded_tissue = sites.site(tissue)
+    label = f"{roi_id} ({kind}: {tissue})" if tissue else f"{roi_id} ({kind})"
+    own_images = [
+        hd.sr.SourceImageForMeasurementGroup(
+            img.ReferencedSOPSequence[0].ReferencedSOPClassUID,
+            img.ReferencedSOPSequence[0].ReferencedSOPInstanceUID,
+        )
+        for img in {
+            ref.sop_instance_uid: _image_ref(roi_id, role, key_refs, sources)
+            for (rid, role), ref in key_refs.items()
+            if rid == roi_id
+        }.values()
+        if img is not None
+    ]
+    return hd.sr.MeasurementsAndQualitativeEvaluations(
+        tracking_identifier=hd.sr.TrackingIdentifier(uid=hd.UID(), identifier=label[:64]),
+        finding_type=None if coded_tissue is None else coded_tissue.coded(),
+        # The site's own words first; else the tissue, with the side the site names.
+        finding_sites=finding_sites(site, sites)
+        or finding_sites(f"{tissue} {site}", sites)
+        or None,
+        measurements=measurements or None,
+        qualitative_evaluations=evaluations or None,
+        source_images=own_images or None,
     )
 
 

@@ -142,3 +142,19 @@ def csv_cell(value: Any) -> Any:
     """A CSV cell safe to open in a spreadsheet (empty for ``None``; formula-like text
     prefixed with an apostrophe): the rule of ``table.csv``, for other CSV files."""
     return _cell(value)
+
+
+def roi_medians(roi: Mapping[str, Any]) -> dict[str, Any]:
+    """A reference or control ROI's median on each series (findings schema 2): its ``medians``
+    (role -> median), or the ``median`` of each role of its ``signal`` statistics; {} when the
+    findings carry neither (schema 1)."""
+    medians = roi.get("medians")
+    if isinstance(medians, Mapping) and medians:
+        return dict(medians)
+    signal = roi.get("signal")
+    if isinstance(signal, Mapping):
+        return {
+            str(role): stats.get("median") if isinstance(stats, Mapping) else None
+            for role, stats in signal.items()
+        }
+    return {}

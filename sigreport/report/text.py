@@ -140,7 +140,8 @@ def _num(value: Any, digits: int) -> str:
     if value is None or (isinstance(value, float) and not math.isfinite(value)):
         return "n/a"
     text = f"{float(value):.{digits}f}"
-    return text[1:] if text.startswith("-") and float(text) == 0.0 else text
+    # A value that rounds to zero has no sign: "-0 %" never appears.
+    return text[1:] if text.startswith("-") and float(text) == 0 else text
 
 
 def _signed(value: Any) -> str:
@@ -148,7 +149,7 @@ def _signed(value: Any) -> str:
     if value is None or (isinstance(value, float) and not math.isfinite(value)):
         return "n/a"
     text = f"{float(value):+.0f}"
-    return "0" if float(text) == 0.0 else text
+    return "0" if float(text) == 0 else text
 
 
 def lesion_sentences(

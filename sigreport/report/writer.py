@@ -71,7 +71,8 @@ def findings_json(findings: Mapping[str, Any]) -> str:
 def key_image_files(
     key_slices: Sequence[KeySlice],
 ) -> tuple[dict[str, bytes], dict[str, list[dict[str, Any]]]]:
-    """The PNGs (file name -> bytes) and, per lesion id, its images in reading order.
+    """The PNGs (file name -> bytes) and, per ROI id (lesions, references, controls), its images
+    in reading order, each with its role, file name, InstanceNumber and ROI kind.
 
     File names are ``<lesion>_<role>.png`` built from sanitized ids only
     (:func:`images.safe_name`), with a numeric suffix when two ids sanitize alike.
@@ -88,7 +89,15 @@ def key_image_files(
             name = f"{stem}-{n}.png"
         png = png_bytes(render_key_image(key))
         files[name] = png
-        per_lesion.setdefault(str(key.roi_id), []).append({"png": png, "role": role, "file": name})
+        per_lesion.setdefault(str(key.roi_id), []).append(
+            {
+                "png": png,
+                "role": role,
+                "file": name,
+                "instance_number": key.instance_number,
+                "kind": key.kind,
+            }
+        )
     return files, per_lesion
 
 
@@ -214,7 +223,13 @@ def _build(
         (folder / IMAGES_DIR / name).write_bytes(png)
     say(progress, "writing report.html", 4, total)
     html = render_html(
-        context, findings, per_lesion, lexicon.wording, lexicon.site, iso_band=lexicon.iso_band
+        context,
+        findings,
+        per_lesion,
+        lexicon.wording,
+        lexicon.site,
+        iso_band=lexicon.iso_band,
+        phrases=phrases,
     )
     (folder / "report.html").write_text(html, encoding="utf-8")
     say(progress, "writing sr.dcm", 5, total)

@@ -178,3 +178,57 @@ def test_malformed_band_is_an_input_error(tmp_path: Path) -> None:
     )
     with pytest.raises(InputError, match=r"\[inversion\] flair_ti_ms: expected \[low, high\]"):
         load_role_bands(tmp_path)
+
+
+# Confidence by how the role was decided (lexicon roles.toml [confidence], docs/ingestion.md):
+# each rule gives its own value, so the values order the decisions from sure to doubtful.
+CONFIDENCE_RULES = [
+    # (rule, acquisition, description, expected role, lexicon key)
+    ("standard attribute", acq(repetition_time_ms=4000, echo_time_ms=100, scanning_sequence="SE",
+                               acquisition_contrast="T2"), "", Role.T2, "stated"),
+    ("ImageType names it", acq(scanning_sequence="EP",
+                               image_type="DERIVED\\PRIMARY\\DIFFUSION\\ADC"), "", Role.ADC,
+     "stated"),
+    ("physics well inside", acq(repetition_time_ms=4000, echo_time_ms=100,
+                                scanning_sequence="SE"), "", Role.T2, "clean"),
+    # TR 950 ms is within 10 % of the 1000 ms upper edge of the spin-echo T1 band.
+    ("near a band edge", acq(repetition_time_ms=950, echo_time_ms=12, scanning_sequence="SE"),
+     "", Role.T1, "near_edge"),
+    ("a value missing", acq(repetition_time_ms=250, echo_time_ms=2.5, scanning_sequence="GR"),
+     "", Role.T1, "partial"),
+    # TR 1400 ms, TE 15 ms: between the short and long TR bands, T1 or PD by physics.
+    ("description tie-break", acq(repetition_time_ms=1400, echo_time_ms=15,
+                                  scanning_sequence="SE"), "AX T1 SE", Role.T1, "tie_break"),
+]  # fmt: skip
+
+
+@pytest.mark.parametrize(
+    ("rule", "acquisition", "description", "expected", "key"),
+    CONFIDENCE_RULES,
+    ids=[r[0] for r in CONFIDENCE_RULES],
+)
+def test_confidence_depends_on_the_rule_that_decided(rule, acquisition, description, expected, key):
+    bands = load_role_bands()
+    role, reason, confidence = infer_role(acquisition, description)
+    assert role == expected, reason
+    assert confidence == bands.number("confidence", key)
+    if key == "near_edge":
+        assert "TR 950 ms near the band edge 1000 ms" in reason
+
+
+def test_confidence_values_are_ordered_from_sure_to_doubtful():
+    bands = load_role_bands()
+    keys = ["stated", "clean", "near_edge", "partial", "tie_break"]
+    values = [bands.number("confidence", k) for k in keys]
+    assert values == sorted(values, reverse=True) and len(set(values)) == len(values)
+
+
+def test_unknown_has_no_confidence():
+    for acquisition, description in [
+        (acq(repetition_time_ms=4.0, echo_time_ms=2.0, scanning_sequence="GR",
+             sequence_variant="SS"), ""),  # SSFP
+        (acq(image_type="ORIGINAL\\PRIMARY\\LOCALIZER"), "scout"),
+        (acq(repetition_time_ms=1400, echo_time_ms=15, scanning_sequence="SE"), "series 4"),
+    ]:  # fmt: skip
+        role, reason, confidence = infer_role(acquisition, description)
+        assert role == Role.UNKNOWN and confidence is None, reason

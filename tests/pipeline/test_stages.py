@@ -301,8 +301,17 @@ def test_findings_read_back_get_the_words_characterization_chose(result, plan, a
 
 
 def test_key_slices_cut_through_the_lesion_centre(plan, images, measurement):
-    slices = build_key_slices(plan.case, images, measurement.samples, plan.measured)
+    every = build_key_slices(
+        plan.case, images, measurement.samples, plan.measured, anchor=plan.anchor_role
+    )
+    slices = [k for k in every if k.kind == "lesion"]
     assert [(k.roi_id, k.role) for k in slices] == [("L1", r) for r in ROLES]
+    # One key slice per reference and control ROI, on the anchor, outlining that ROI alone.
+    others = [k for k in every if k.kind != "lesion"]
+    expected = [(s.id, s.kind.value) for s in plan.case.rois if s.kind.value != "lesion"]
+    assert [(k.roi_id, k.kind) for k in others] == expected
+    assert all(k.role is plan.anchor_role and k.reference_mask is None for k in others)
+    assert all(k.lesion_mask.any() for k in others)
     # The lesion centre's slice: (z - origin z) / slice spacing.
     centre_slice = round((LESION_CENTRE[2] - ORIGIN[2]) / SPACING[2])
     for key in slices:
@@ -312,9 +321,10 @@ def test_key_slices_cut_through_the_lesion_centre(plan, images, measurement):
         # Row index follows y, column index follows x (identity direction).
         assert cols.mean() * SPACING[0] + ORIGIN[0] == pytest.approx(LESION_CENTRE[0], abs=1.0)
         assert rows.mean() * SPACING[1] + ORIGIN[1] == pytest.approx(LESION_CENTRE[1], abs=1.0)
-        assert (
-            key.sop_instance_uid == plan.measured[key.role].instances[centre_slice].sop_instance_uid
-        )
+        instance = plan.measured[key.role].instances[centre_slice]
+        assert key.sop_instance_uid == instance.sop_instance_uid
+        # The image number a viewer shows is the slice's own InstanceNumber (0020,0013).
+        assert key.instance_number == instance.instance_number is not None
 
 
 # --------------------------------------------------------------------------------------------

@@ -11,7 +11,7 @@ import pytest
 from pydicom import dcmread
 from pydicom.sr.codedict import codes
 
-from sigreport.report.sr import PRIVATE_SCHEME, build_sr, grade_name, role_method
+from sigreport.report.sr import PRIVATE_SCHEME, build_sr, grade_name
 
 
 @pytest.fixture(scope="module")
@@ -66,24 +66,36 @@ def groups(sr):
     }
 
 
-def test_one_measurement_group_per_lesion_tracked_by_id_and_site(groups, findings):
-    assert sorted(groups) == sorted(lesion["id"] for lesion in findings["lesions"])
+def test_one_measurement_group_per_lesion_and_roi_tracked_by_id(groups, findings):
+    ids = [lesion["id"] for lesion in findings["lesions"]] + [r["id"] for r in findings["rois"]]
+    assert sorted(groups) == sorted(ids)
     assert groups["L1"][0].tracking_identifier == "L1 (right frontal white matter)"
+    assert groups["R1"][0].tracking_identifier == "R1 (reference: white matter)"
 
 
-def _value(measurements, name, method=None, derivation=None):
+def _series_of(measurement, study) -> str | None:
+    """The role of the series whose image a measurement references (TID 300 Source of
+    Measurement), the standard way to say which series a value was measured on."""
+    uids = {r.referenced_sop_instance_uid for r in measurement.referenced_images or ()}
+    for role, stack in study.items():
+        if uids & {i.sop_instance_uid for i in stack.instances}:
+            return role
+    return None
+
+
+def _value(measurements, name, role=None, derivation=None, study=None):
     found = [
         m
         for m in measurements
         if m.name == name
-        and (method is None or m.method == method)
+        and (role is None or _series_of(m, study) == role)
         and (derivation is None or m.derivation == derivation)
     ]
-    assert len(found) == 1, (name, method, derivation, len(found))
+    assert len(found) == 1, (name, role, derivation, len(found))
     return found[0]
 
 
-def test_measurement_values_read_back(groups, findings):
+def test_measurement_values_read_back(groups, findings, study):
     for lesion in findings["lesions"]:
         _, measurements, _ = groups[lesion["id"]]
         volume = _value(measurements, codes.SCT.Volume)
@@ -92,17 +104,16 @@ def test_measurement_values_read_back(groups, findings):
         for role, stats in lesion["signal"].items():
             if stats is None:
                 continue
-            mean = _value(
-                measurements, codes.DCM.MRSignalIntensity, role_method(role), codes.cid7464.Mean
-            )
+            signal = codes.DCM.MRSignalIntensity
+            mean = _value(measurements, signal, role, codes.cid7464.Mean, study)
             assert mean.value == pytest.approx(stats["mean"])
-            median = _value(
-                measurements, codes.DCM.MRSignalIntensity, role_method(role), codes.cid7464.Median
-            )
+            median = _value(measurements, signal, role, codes.cid7464.Median, study)
             assert median.value == pytest.approx(stats["median"])
-            ratio = _value(measurements, codes.SCT.Ratio, role_method(role))
+            ratio = _value(measurements, codes.SCT.Ratio, role, study=study)
             assert ratio.value == pytest.approx(stats["ratio"])
             assert ratio.unit.value == "{ratio}"
+            # Which series: the referenced image, not a private concept.
+            assert ratio.method is None
 
 
 def test_enhancement_and_suppression_read_back(groups):
@@ -140,8 +151,8 @@ def test_flags_are_coded(groups):
 
 def test_measurements_reference_their_source_images(sr, groups, study):
     measurements = groups["L1"][1]
-    ratio = _value(measurements, codes.SCT.Ratio, role_method("T2"), codes.cid7464.Median)
-    [ref] = ratio.referenced_images
+    mean = _value(measurements, codes.DCM.MRSignalIntensity, "T2", codes.cid7464.Mean, study)
+    [ref] = mean.referenced_images
     assert ref.referenced_sop_instance_uid == study["T2"].instances[1].sop_instance_uid
     evidence = {
         item.ReferencedSOPInstanceUID
@@ -166,8 +177,8 @@ def test_sr_without_any_source_instance_is_refused(findings):
 
 def test_the_document_content_view_is_the_whole_tree(findings, study, key_slices):
     # build_sr attaches the content tree without highdicom's deep copy: highdicom's content
-    # view of the new document must be the same full tree as its dataset (a group per lesion,
-    # not the placeholder the document was built around).
+    # view of the new document must be the same full tree as its dataset (a group per lesion
+    # and per reference or control ROI, not the placeholder the document was built around).
     document = build_sr(findings, key_slices, study)
     root = document.content[0]
     assert root.ContentSequence is document.ContentSequence
@@ -184,7 +195,8 @@ def test_the_document_content_view_is_the_whole_tree(findings, study, key_slices
         for item in group.ContentSequence
         if item.ValueType == "TEXT" and item.ConceptNameCodeSequence[0].CodeValue == "112039"
     ]
-    assert len(ids) == len(findings["lesions"]) and "placeholder" not in ids
+    expected = len(findings["lesions"]) + len(findings.get("rois", []))
+    assert len(ids) == expected and "placeholder" not in ids
 
 
 def test_image_library_describes_each_series_once(sr, study):
