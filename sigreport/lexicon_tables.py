@@ -8,6 +8,7 @@ gathers what each stage reads from them into one frozen :class:`Lexicon`:
     thresholds.toml,
     tissues.toml,
     behaviour.toml  -> rules        (measure: grades, qualifiers, pairs' thresholds, behaviour)
+    families.toml   -> families     (measure: diffusion, susceptibility, chemical shift, dynamic)
     wording.toml    -> wording      (report: titles, role names, sentences)
     cautions.toml   -> cautions     (report: the cautions every report carries)
     templates/      -> the report templates (the site's folder first)
@@ -29,6 +30,7 @@ from sigreport import lexicon
 from sigreport.align.rigid import AlignmentSettings, load_settings
 from sigreport.errors import InputError
 from sigreport.ingest.roles import RoleBands, load_role_bands
+from sigreport.measure.families import FamilyThresholds, load_family_thresholds
 from sigreport.measure.rules import Rules, load_rules
 from sigreport.model import Role
 
@@ -173,6 +175,7 @@ class Lexicon:
     rules: Rules
     wording: Wording
     cautions: tuple[str, ...]
+    families: FamilyThresholds = FamilyThresholds()
 
     @property
     def iso_band(self) -> tuple[float, float]:
@@ -205,6 +208,7 @@ def load_lexicon(site: Path | str | None = None) -> Lexicon:
         rules=load_rules(folder),
         wording=load_wording(folder),
         cautions=load_cautions(folder),
+        families=load_family_thresholds(folder),
     )
 
 

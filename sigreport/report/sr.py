@@ -139,7 +139,7 @@ def build_sr(
     Parameters
     ----------
     findings:
-        The findings.json object (schema sigreport-findings/1).
+        The findings.json object (schema sigreport-findings/2).
     key_slices:
         The lesions' central slices; their SOP instances are the measurements' source images.
     stacks:

@@ -113,7 +113,7 @@ def write_report(
     out_dir:
         The report folder to create.
     findings:
-        The complete findings.json object (schema sigreport-findings/1), written as is.
+        The complete findings.json object (schema sigreport-findings/2), written as is.
     key_slices:
         Each lesion's central slice on each series (the key images; the SR's source images).
     stacks:

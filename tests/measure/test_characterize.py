@@ -151,8 +151,16 @@ def test_lesion_json_has_exactly_the_contract_keys(build, rules):
         "enhancement",
         "suppression",
         "flow_void",
+        # version 2: the other sequence families, null without their series
+        "diffusion",
+        "susceptibility",
+        "chemical_shift",
+        "dynamic",
         "behaviour",
     }
+    assert [out[k] for k in ("diffusion", "susceptibility", "chemical_shift", "dynamic")] == [
+        None
+    ] * 4
     assert set(out["signal"]["T2"]) == {
         "n_voxels",
         "mean",

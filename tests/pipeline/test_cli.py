@@ -85,7 +85,7 @@ def test_demo_builds_a_study_and_writes_the_whole_report(tmp_path: Path):
         assert (out / "report" / name).is_file(), name
     assert any((out / "report" / "images").glob("*.png"))
     findings = json.loads((out / "report" / "findings.json").read_text())
-    assert findings["schema"] == "sigreport-findings/1" and findings["lesions"]
+    assert findings["schema"] == "sigreport-findings/2" and findings["lesions"]
     # --force replaces it; the same run is reproducible from the same seed.
     again = runner.invoke(app, ["demo", "--scenario", str(scenario), "--out", str(out), "--force"])
     assert again.exit_code == 0, again.output

@@ -174,7 +174,7 @@ def _rigid(points, matrix, centre, translation) -> np.ndarray:
 
 def test_neuro_writes_every_output_file(neuro, tmp_path_factory):
     findings, _, _ = neuro
-    assert findings["schema"] == "sigreport-findings/1"
+    assert findings["schema"] == "sigreport-findings/2"
     assert any("not a diagnosis" in c for c in findings["cautions"])
 
 

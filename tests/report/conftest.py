@@ -152,7 +152,7 @@ def make_findings(stacks: dict[str, Stack]) -> dict[str, Any]:
         }
     )  # fmt: skip
     return {
-        "schema": "sigreport-findings/1",
+        "schema": "sigreport-findings/2",
         "tool": {"name": "sigreport", "version": "0.1.0"},
         "study": {
             "study_instance_uid": stacks["T1"].instances[0].sop_instance_uid,

@@ -51,7 +51,7 @@ def test_nan_is_refused_not_written(findings):
 def test_the_contract_example_validates(validator):
     # The findings.json example of the contract (docs/usage.md), verbatim in its values.
     example = {
-        "schema": "sigreport-findings/1",
+        "schema": "sigreport-findings/2",
         "tool": {"name": "sigreport", "version": "0.1.0"},
         "study": {"study_instance_uid": "1.2.3", "study_date": "20261201", "accession_number": "A1"},
         "series": [
@@ -94,7 +94,7 @@ def test_the_contract_example_validates(validator):
         (("lesions", 0, "enhancement", "pattern"), "ring"),
         (("lesions", 0, "suppression", "water"), None),
         (("qc", 0, "level"), "fatal"),
-        (("schema",), "sigreport-findings/2"),
+        (("schema",), "sigreport-findings/1"),
         (("cautions",), []),
         (("unexpected",), 1),
     ],
