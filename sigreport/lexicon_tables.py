@@ -20,6 +20,7 @@ report's ratio plot shades the isointense band of the grade thresholds themselve
 
 from __future__ import annotations
 
+import dataclasses
 import string
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -61,6 +62,14 @@ _WORDING_SECTIONS: dict[str, set[str]] = {
         "considerations_separator",
     },
     "qc": {"warning", "error", "info", "none"},
+    # The other sequence families' sentences (report.text.family_sentences).
+    "families": {
+        "restricted", "shine_through", "no_restriction", "diffusion_unknown", "adc_value",
+        "adc_ratio_only", "blooming", "no_blooming", "susceptibility_unknown", "microscopic_fat",
+        "no_microscopic_fat", "chemical_shift_unknown", "fat_fraction", "dynamic",
+        "dynamic_no_curve", "dynamic_phase", "curve_persistent", "curve_plateau",
+        "curve_washout", "unreliable",
+    },
 }  # fmt: skip
 
 
@@ -74,6 +83,7 @@ class Wording:
     sentences: dict[str, str]
     qc: dict[str, str]
     source: Path
+    families: dict[str, str] = dataclasses.field(default_factory=dict)
 
     def role_name(self, role: str) -> str:
         """The running-text name of a role (the role string itself when unknown)."""
@@ -116,15 +126,16 @@ def load_wording(site: Path | str | None = None) -> Wording:
         if missing:
             raise InputError(f"{path} [{section}]: missing key(s) {', '.join(missing)}")
         parsed[section] = values
-    for section in ("titles", "roles", "patterns", "sentences", "qc"):
+    for section in ("titles", "roles", "patterns", "sentences", "qc", "families"):
         for key, value in parsed[section].items():
             if not isinstance(value, str):
                 raise InputError(f"{path} [{section}] {key}: expected a string, got {value!r}")
-    for key, value in parsed["sentences"].items():
-        try:
-            placeholders(value)
-        except ValueError as exc:
-            raise InputError(f"{path} [sentences] {key}: {exc}") from None
+    for section in ("sentences", "families"):
+        for key, value in parsed[section].items():
+            try:
+                placeholders(value)
+            except ValueError as exc:
+                raise InputError(f"{path} [{section}] {key}: {exc}") from None
     return Wording(
         titles=dict(parsed["titles"]),
         roles=dict(parsed["roles"]),
@@ -132,6 +143,7 @@ def load_wording(site: Path | str | None = None) -> Wording:
         sentences=dict(parsed["sentences"]),
         qc=dict(parsed["qc"]),
         source=path,
+        families=dict(parsed["families"]),
     )
 
 

@@ -237,12 +237,101 @@ def lesion_sentences(
                 fill(s["raw_percent"], "raw_percent", raw=_signed(enhancement["raw_percent"]))
             )
 
+    out += family_sentences(lesion, wording)
     flow_void = lesion.get("flow_void")
     if flow_void is True:
         out.append(s["flow_void"])
     elif flow_void is False:
         out.append(s["no_flow_void"])
     return [_capital(sentence) for sentence in out]
+
+
+def family_sentences(lesion: Mapping[str, Any], wording: Wording) -> list[str]:
+    """Diffusion, susceptibility, chemical shift and dynamic sentences (wording.toml
+    ``[families]``), each only when the lesion has the field; "blooming" is said only when the
+    drop and the grade on both series are known (``blooming`` not null)."""
+    f = wording.families
+    out: list[str] = []
+
+    def add(key: str, **values: str) -> None:
+        out.append(fill(f[key], f"families {key}", **values))
+
+    diffusion = lesion.get("diffusion")
+    if diffusion:
+        ratio = _num(diffusion.get("adc_ratio"), 2)
+        value = diffusion.get("adc_1e-6_mm2_s")
+        adc = (
+            fill(f["adc_value"], "families adc_value", value=_num(value, 0), ratio=ratio)
+            if value is not None
+            else fill(f["adc_ratio_only"], "families adc_ratio_only", ratio=ratio)
+        )
+        b = diffusion.get("b_value")
+        values = {"dwi": wording.role_name("DWI"), "b_value": _num(b, 0), "adc": adc}
+        if diffusion.get("restricted"):
+            add("restricted", **values)
+        elif diffusion.get("shine_through"):
+            add("shine_through", **values)
+        elif diffusion.get("restricted") is False:
+            add("no_restriction", **values)
+        else:
+            add("diffusion_unknown")
+    for name, flag, yes, no, unknown in (
+        ("susceptibility", "blooming", "blooming", "no_blooming", "susceptibility_unknown"),
+        (
+            "chemical_shift",
+            "microscopic_fat",
+            "microscopic_fat",
+            "no_microscopic_fat",
+            "chemical_shift_unknown",
+        ),
+    ):
+        pair = lesion.get(name)
+        if not pair or pair.get("from") is None:
+            continue
+        values = {
+            "from": wording.role_name(str(pair.get("from"))),
+            "to": wording.role_name(str(pair.get("to"))),
+            "drop": _num(pair.get("drop_percent"), 0),
+        }
+        if pair.get(flag) is None:
+            add(unknown, **values)
+        else:
+            add(yes if pair[flag] else no, **values)
+            if pair.get("reliable") is False:
+                add("unreliable")
+    cs = lesion.get("chemical_shift") or {}
+    if cs.get("fat_fraction_percent") is not None:
+        add("fat_fraction", fat_fraction=_num(cs["fat_fraction_percent"], 0))
+    dynamic = lesion.get("dynamic")
+    if dynamic:
+        items = [
+            fill(
+                f["dynamic_phase"],
+                "families dynamic_phase",
+                percent=_signed(p.get("percent")),
+                delay=_num(p.get("delay_s"), 0),
+            )
+            for p in dynamic.get("phases", [])
+        ]
+        values = {
+            "pre": wording.role_name(str(dynamic.get("pre"))),
+            "phases": wording.sentences["list_separator"].join(items),
+        }
+        peak = dynamic.get("peak_phase")
+        phases = dynamic.get("phases", [])
+        curve = dynamic.get("curve")
+        if curve is not None and peak is not None and 1 <= peak <= len(phases):
+            add(
+                "dynamic",
+                peak_delay=_num(phases[peak - 1].get("delay_s"), 0),
+                curve=f.get(f"curve_{curve}", str(curve)),
+                **values,
+            )
+            if dynamic.get("reliable") is False:
+                add("unreliable")
+        else:
+            add("dynamic_no_curve", **values)
+    return out
 
 
 def behaviour_sentences(
