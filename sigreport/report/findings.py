@@ -94,9 +94,11 @@ def build_findings(
             entry["alignment"] = alignments[role].to_json()
             entry["anchor"] = role is anchor_role
         elif stack.key in phase_alignments:
+            # Measured for the dynamic curve only: the role's signal is another phase's.
             entry["measured"] = True
             entry["alignment"] = phase_alignments[stack.key].to_json()
             entry["anchor"] = False
+            entry["in_signal"] = False
         entry.update(
             _family_series_fields(stack, result.adc_units_ok if role is Role.ADC else None)
         )

@@ -25,6 +25,8 @@ def series_by_role(findings: Mapping[str, Any]) -> dict[str, Mapping[str, Any]]:
         role = entry.get("role")
         if role is None:
             continue
+        if entry.get("in_signal") is False:  # a dynamic phase measured for the curve only
+            continue
         if role not in out or (entry.get("measured") and not out[role].get("measured")):
             out[role] = entry
     return out

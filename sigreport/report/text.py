@@ -21,7 +21,7 @@ from jinja2.sandbox import ImmutableSandboxedEnvironment, SecurityError
 
 from sigreport import lexicon
 from sigreport.errors import InputError
-from sigreport.model import LesionPhrases, role_sort_key
+from sigreport.model import UNGRADED_ROLES, LesionPhrases, role_sort_key
 from sigreport.report.tables import ordered_roles, series_by_role, table_rows
 from sigreport.report.wording import Wording, fill
 from sigreport.safetext import clean_strings
@@ -172,6 +172,8 @@ def lesion_sentences(
     for role in ordered_roles(signal):
         stats = signal[role]
         name = wording.role_name(role)
+        if stats is not None and role in UNGRADED_ROLES:
+            continue  # Dixon water / fat: the fat fraction, not a grade (family_sentences)
         if stats is None or stats.get("ratio") is None:
             unmeasured.append(name)
             continue
@@ -191,7 +193,7 @@ def lesion_sentences(
     suppression: Mapping[str, Any] = lesion.get("suppression") or {}
     for kind in ("fluid", "fat"):
         flag = suppression.get(kind)
-        if not flag:
+        if not flag or flag.get("to") is None:  # the study has no such pair
             continue
         values = {
             "from": wording.role_name(str(flag.get("from"))),
