@@ -256,16 +256,16 @@ def family_sentences(lesion: Mapping[str, Any], wording: Wording) -> list[str]:
     out: list[str] = []
 
     def add(key: str, **values: str) -> None:
-        out.append(fill(f[key], f"families {key}", **values))
+        out.append(fill(f[key], key, section="families", **values))
 
     diffusion = lesion.get("diffusion")
     if diffusion:
         ratio = _num(diffusion.get("adc_ratio"), 2)
         value = diffusion.get("adc_1e-6_mm2_s")
         adc = (
-            fill(f["adc_value"], "families adc_value", value=_num(value, 0), ratio=ratio)
+            fill(f["adc_value"], "adc_value", section="families", value=_num(value, 0), ratio=ratio)
             if value is not None
-            else fill(f["adc_ratio_only"], "families adc_ratio_only", ratio=ratio)
+            else fill(f["adc_ratio_only"], "adc_ratio_only", section="families", ratio=ratio)
         )
         b = diffusion.get("b_value")
         values = {"dwi": wording.role_name("DWI"), "b_value": _num(b, 0), "adc": adc}
@@ -309,7 +309,8 @@ def family_sentences(lesion: Mapping[str, Any], wording: Wording) -> list[str]:
         items = [
             fill(
                 f["dynamic_phase"],
-                "families dynamic_phase",
+                "dynamic_phase",
+                section="families",
                 percent=_signed(p.get("percent")),
                 delay=_num(p.get("delay_s"), 0),
             )
