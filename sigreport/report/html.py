@@ -10,6 +10,7 @@ from typing import Any
 
 from markupsafe import Markup
 
+from sigreport.model import UNGRADED_ROLES
 from sigreport.report.images import lesion_points, ratio_plot_svg, time_intensity_svg
 from sigreport.report.tables import ordered_roles, series_by_role
 from sigreport.report.text import environment, render_template
@@ -82,7 +83,10 @@ def render_html(
         # The SVG is built from numbers and escaped labels only (images.ratio_plot_svg).
         plot = Markup(
             ratio_plot_svg(
-                lesion_points(signal, ordered_roles(signal)),
+                # Dixon water / fat give the fat fraction, not a ratio: not plotted as missing.
+                lesion_points(
+                    signal, [r for r in ordered_roles(signal) if r not in UNGRADED_ROLES]
+                ),
                 iso_band=iso_band,
                 title=f"{lesion['id']}: ratio to {lesion['reference_tissue']}",
             )
