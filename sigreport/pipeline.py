@@ -251,6 +251,18 @@ def choose_phases(
         if len(members) < 2:
             continue
         phases[role] = tuple(members)
+        pre = measured.get(PRE_CONTRAST_OF[role])
+        if pre is not None and pre.dynamic_group != pick.dynamic_group:
+            notes.append(
+                QcNote(
+                    QcLevel.WARNING,
+                    "dynamic-pre-other-acquisition",
+                    f"{role.value}: the measured {pre.role.value} ({_series_name(pre)}) is not "
+                    "the dynamic acquisition's own pre-contrast phase; the dynamic percentages "
+                    f"compare two acquisitions (the case file's [roles] {pre.role.value} can "
+                    "pick the pre-contrast phase)",
+                )
+            )
         delays = ", ".join(
             f"{_series_name(s)} at {s.dynamic_delay_s:g} s"
             if s.dynamic_delay_s is not None

@@ -136,7 +136,8 @@ def test_dynamic_phases_measure_the_last_and_keep_every_phase():
     # docs/usage.md, dynamic: the role's signal is the last phase; every phase gives the curve
     phases = [_phase(8 + k, k + 1, d) for k, d in enumerate((0.0, 60.0, 120.0))]
     other = _stack(20, Role.T1POSTFS, (0.5, 0.5, 0.5))  # a finer single post series elsewhere
-    index = _index(_stack(7, Role.T1FS, mode="3D"), *phases, other)
+    pre = replace(_stack(7, Role.T1FS, mode="3D"), dynamic_group="1.2.3.7")
+    index = _index(pre, *phases, other)
     measured, notes = choose_measured(index, {})
     assert measured[Role.T1POSTFS].series_number == 10
     shared = [n for n in notes if n.code == "role-shared"]
@@ -145,6 +146,10 @@ def test_dynamic_phases_measure_the_last_and_keep_every_phase():
     chosen, phase_notes = choose_phases(index, measured)
     assert [s.series_number for s in chosen[Role.T1POSTFS]] == [8, 9, 10]
     assert [n.code for n in phase_notes] == ["dynamic-phases"]
+    # a pre-contrast series from another acquisition is named
+    alone = _index(_stack(7, Role.T1FS, mode="3D"), *phases)
+    chosen, phase_notes = choose_phases(alone, choose_measured(alone, {})[0])
+    assert "dynamic-pre-other-acquisition" in [n.code for n in phase_notes]
     # the case file's [roles] may name another phase: its signal, the curve still from all
     forced = {Role.T1POSTFS: phases[0].key}
     measured, _ = choose_measured(index, forced)
