@@ -225,3 +225,32 @@ def test_the_sr_with_the_new_fields_passes_dciodvfy(diffusion, kinetics):
             if line.startswith("Error")
         ]
         assert errors == []
+
+
+def test_an_adc_map_whose_header_scales_it_into_other_units_is_caught(tmp_path):
+    # Files, not images: the ADC map's RescaleSlope (PS3.3 C.11.1.1.2) claims the stored values
+    # are in 10^-3 units of 10^-6 mm^2/s, as a header with the wrong vendor scaling would.
+    study = generate_study("diffusion", tmp_path / "case", motion=False)
+    truth = json.loads(study.truth_path.read_text())
+    adc_uid = truth["series"]["ADC"]["series_instance_uid"]
+    changed = 0
+    for path in study.study_dir.rglob("*"):
+        if not path.is_file():
+            continue
+        ds = dcmread(path)
+        if ds.SeriesInstanceUID != adc_uid:
+            continue
+        ds.RescaleSlope = float(getattr(ds, "RescaleSlope", 1.0)) * 1e-3
+        ds.RescaleIntercept = float(getattr(ds, "RescaleIntercept", 0.0)) * 1e-3
+        ds.save_as(path)
+        changed += 1
+    assert changed > 0
+    findings = analyze_case(study.case_path, study_dir=study.study_dir, register=False).findings
+    adc = next(s for s in findings["series"] if s["role"] == "ADC" and s["measured"])
+    assert adc["adc_units_ok"] is False
+    assert any(q["code"] == "adc-units-implausible" for q in findings["qc"])
+    for lesion in findings["lesions"]:
+        expected = truth["rois"][lesion["id"]]["expected"]
+        assert lesion["diffusion"]["adc_1e-6_mm2_s"] is None
+        assert lesion["diffusion"]["restricted"] == expected["restricted"]
+        assert lesion["diffusion"]["shine_through"] == expected["shine_through"]
