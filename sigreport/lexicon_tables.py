@@ -9,6 +9,7 @@ gathers what each stage reads from them into one frozen :class:`Lexicon`:
     tissues.toml,
     behaviour.toml,
     grading.toml    -> rules        (measure: grades, qualifiers, pairs' thresholds, behaviour)
+    families.toml   -> families     (measure: diffusion, susceptibility, chemical shift, dynamic)
     wording.toml    -> wording      (report: titles, role names, sentences)
     cautions.toml   -> cautions     (report: the cautions every report carries)
     templates/      -> the report templates (the site's folder first)
@@ -31,6 +32,7 @@ from sigreport import lexicon
 from sigreport.align.rigid import AlignmentSettings, load_settings
 from sigreport.errors import InputError
 from sigreport.ingest.roles import RoleBands, load_role_bands
+from sigreport.measure.families import FamilyThresholds, load_family_thresholds
 from sigreport.measure.rules import Rules, load_rules
 from sigreport.model import Role
 
@@ -78,6 +80,14 @@ _WORDING_LATER: dict[str, set[str]] = {
         "larger", "smaller", "same_volume", "newly_enhancing", "no_longer_enhancing",
         "enhancement", "ratio", "items_separator", "not_seen", "not_seen_lesion",
     },
+    # The other sequence families' sentences (report.text.family_sentences).
+    "families": {
+        "restricted", "shine_through", "no_restriction", "diffusion_unknown", "adc_value",
+        "adc_ratio_only", "blooming", "no_blooming", "susceptibility_unknown", "microscopic_fat",
+        "no_microscopic_fat", "chemical_shift_unknown", "fat_fraction", "dynamic",
+        "dynamic_no_curve", "dynamic_phase", "curve_persistent", "curve_plateau",
+        "curve_washout", "unreliable",
+    },
     "formats": {"date", "not_assessed"},
     "header": {
         "patient_name", "patient_id", "birth_date", "sex", "accession", "study_date",
@@ -101,6 +111,7 @@ class Wording:
     header: dict[str, str] = dataclasses.field(
         default_factory=dict
     )  # labels of the reports' header block
+    families: dict[str, str] = dataclasses.field(default_factory=dict)
 
     def role_name(self, role: str) -> str:
         """The running-text name of a role (the role string itself when unknown)."""
@@ -155,15 +166,12 @@ def load_wording(site: Path | str | None = None) -> Wording:
         for key, value in parsed[section].items():
             if not isinstance(value, str):
                 raise InputError(f"{path} [{section}] {key}: expected a string, got {value!r}")
-    for key, value in [
-        *parsed["sentences"].items(),
-        *parsed["titles"].items(),
-        *parsed["change"].items(),
-    ]:
-        try:
-            placeholders(value)
-        except ValueError as exc:
-            raise InputError(f"{path} [sentences] {key}: {exc}") from None
+    for section in ("sentences", "titles", "change", "families"):
+        for key, value in parsed[section].items():
+            try:
+                placeholders(value)
+            except ValueError as exc:
+                raise InputError(f"{path} [{section}] {key}: {exc}") from None
     return Wording(
         titles=dict(parsed["titles"]),
         roles=dict(parsed["roles"]),
@@ -174,6 +182,7 @@ def load_wording(site: Path | str | None = None) -> Wording:
         source=path,
         formats=dict(parsed["formats"]),
         header=dict(parsed["header"]),
+        families=dict(parsed["families"]),
     )
 
 
@@ -217,6 +226,7 @@ class Lexicon:
     rules: Rules
     wording: Wording
     cautions: tuple[str, ...]
+    families: FamilyThresholds = FamilyThresholds()
 
     @property
     def iso_band(self) -> tuple[float, float]:
@@ -249,6 +259,7 @@ def load_lexicon(site: Path | str | None = None) -> Lexicon:
         rules=load_rules(folder),
         wording=load_wording(folder),
         cautions=load_cautions(folder),
+        families=load_family_thresholds(folder),
     )
 
 

@@ -109,6 +109,9 @@ PRE_CONTRAST_OF: dict[Role, Role] = {Role.T1POST: Role.T1, Role.T1POSTFS: Role.T
 FAT_SUPPRESSED_T1: tuple[Role, ...] = (Role.T1FS, Role.T1POSTFS)
 #: The susceptibility-weighted series a T2 pair ends on, preferred first (SWI over T2*).
 SUSCEPTIBILITY_TARGETS: tuple[Role, ...] = (Role.SWI, Role.T2STAR)
+#: Roles measured but not graded against a reference: the Dixon water and fat images give the
+#: fat fraction from the lesion's own medians (docs/measurements.md, chemical shift).
+UNGRADED_ROLES: tuple[Role, ...] = (Role.WATER, Role.FAT)
 
 
 def role_sort_key(role: str) -> tuple[int, str]:
@@ -463,6 +466,9 @@ class MeasuredRoi:
     max_diameter_mm: float | None
     by_role: dict[Role, SeriesMeasurement]  # roles present in the study and measured
     diameters_mm: tuple[float, float, float] | None = None
+    # Dynamic post-contrast phases, keyed by the phase's Stack.key (the measured phase of a
+    # role is in ``by_role`` too).
+    by_phase: dict[str, SeriesMeasurement] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -472,6 +478,9 @@ class MeasuredStudy:
     rois: tuple[MeasuredRoi, ...]
     stacks: dict[Role, Stack]  # the stack measured for each role
     noise_sigma: dict[Role, float | None]  # background noise (Gaussian sigma) per role
+    # Post-contrast role -> every phase of its dynamic acquisition, by phase number (empty
+    # without a dynamic acquisition); the measured stack of the role is one of them.
+    phases: dict[Role, tuple[Stack, ...]] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -555,6 +564,9 @@ class ReportPlan:
     anchor_note: QcNote | None = None
     viewer_keys: dict[str, str] = field(default_factory=dict)  # ROI id -> stack of its `at`
     roi_settings: Any = None  # lexicon/rois.toml (sigreport.rois.settings.RoiSettings)
+    # Post-contrast role -> every phase of its dynamic acquisition, by phase number (the
+    # measured stack of the role is one of them); empty without a dynamic acquisition.
+    phases: dict[Role, tuple[Stack, ...]] = field(default_factory=dict)
 
     @property
     def anchor(self) -> Stack:
@@ -569,6 +581,8 @@ class AlignedStudy:
 
     alignments: dict[Role, Alignment]
     qc: tuple[QcNote, ...] = ()
+    # Dynamic phases other than the measured one of their role, keyed by Stack.key.
+    phase_alignments: dict[str, Alignment] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -599,6 +613,8 @@ class Analysis:
     aligned: AlignedStudy
     measurement: StudyMeasurement
     files: dict[str, bytes] = field(default_factory=dict)  # OUTDIR-relative, e.g. rois/<id>.nii.gz
+    # Dynamic phases other than the measured one of their role, keyed by Stack.key.
+    phase_images: dict[str, sitk.Image] = field(default_factory=dict)
 
     @property
     def stacks(self) -> dict[Role, Stack]:

@@ -35,6 +35,7 @@ from sigreport.lexicon_tables import Lexicon, load_lexicon
 from sigreport.measure import Characterization, characterize, measure_roi, noise_sigma
 from sigreport.measure.change import interval_change, with_interval_change
 from sigreport.model import (
+    PRE_CONTRAST_OF,
     ROLE_ORDER,
     AlignedStudy,
     Alignment,
@@ -48,6 +49,7 @@ from sigreport.model import (
     ReportPlan,
     RoiKind,
     RoiShape,
+    RoiSpec,
     Role,
     SeriesMeasurement,
     Stack,
@@ -90,6 +92,8 @@ __all__ = [
     "check_roi_extent",
     "choose_anchor",
     "choose_measured",
+    "choose_phases",
+    "load_phases",
     "load_series",
     "measure_study",
     "override_notes",
@@ -252,10 +256,18 @@ def choose_measured(
             continue
         if role in forced:
             pick = next(s for s in candidates if s.key == forced[role])
+        elif any(s.dynamic_phase is not None for s in candidates):
+            pick = _last_phase(candidates)
         else:
             pick = min(candidates, key=lambda s: (s.voxel_volume_mm3, s.series_number or 0))
         measured[role] = pick
-        others = [s for s in candidates if s.key != pick.key]
+        # The other phases of a dynamic acquisition are measured too (choose_phases).
+        others = [
+            s
+            for s in candidates
+            if s.key != pick.key
+            and (pick.dynamic_group is None or s.dynamic_group != pick.dynamic_group)
+        ]
         if others:
             names = ", ".join(_series_name(s) for s in others)
             notes.append(
@@ -295,6 +307,77 @@ def choose_measured(
                 QcNote(QcLevel.WARNING, "series-geometry", f"{_series_name(stack)}: {warning}")
             )
     return measured, notes
+
+
+def _last_phase(candidates: Sequence[Stack]) -> Stack:
+    """The last phase of the dynamic acquisition with the most phases (ties: finest voxels):
+    the post-contrast series a single-phase study would have (docs/usage.md, dynamic)."""
+    groups: dict[str, list[Stack]] = {}
+    for stack in candidates:
+        if stack.dynamic_group is not None and stack.dynamic_phase is not None:
+            groups.setdefault(stack.dynamic_group, []).append(stack)
+    members = max(groups.values(), key=lambda g: (len(g), -min(s.voxel_volume_mm3 for s in g)))
+    return max(members, key=lambda s: s.dynamic_phase or 0)
+
+
+def choose_phases(
+    index: StudyIndex, measured: Mapping[Role, Stack]
+) -> tuple[dict[Role, tuple[Stack, ...]], list[QcNote]]:
+    """Every phase of the dynamic acquisition each measured post-contrast stack belongs to, in
+    phase order (acquisition time; ``sigreport.ingest.dynamic``), and a note naming them.
+
+    A role gets phases only when its measured stack is a phase of a dynamic acquisition with at
+    least two post-contrast phases of that role; the case file's ``[roles]`` may pick any phase
+    as the measured one (its signal and the version-1 enhancement), the dynamic curve still
+    uses them all.
+    """
+    phases: dict[Role, tuple[Stack, ...]] = {}
+    notes: list[QcNote] = []
+    for role in PRE_CONTRAST_OF:
+        pick = measured.get(role)
+        if pick is None or pick.dynamic_group is None or pick.dynamic_phase is None:
+            continue
+        members = sorted(
+            (
+                s
+                for s in index.stacks
+                if s.role is role
+                and s.dynamic_group == pick.dynamic_group
+                and s.dynamic_phase is not None
+            ),
+            key=lambda s: s.dynamic_phase or 0,
+        )
+        if len(members) < 2:
+            continue
+        phases[role] = tuple(members)
+        pre = measured.get(PRE_CONTRAST_OF[role])
+        if pre is not None and pre.dynamic_group != pick.dynamic_group:
+            notes.append(
+                QcNote(
+                    QcLevel.WARNING,
+                    "dynamic-pre-other-acquisition",
+                    f"{role.value}: the measured {pre.role.value} ({_series_name(pre)}) is not "
+                    "the dynamic acquisition's own pre-contrast phase; the dynamic percentages "
+                    f"compare two acquisitions (the case file's [roles] {pre.role.value} can "
+                    "pick the pre-contrast phase)",
+                )
+            )
+        delays = ", ".join(
+            f"{_series_name(s)} at {s.dynamic_delay_s:g} s"
+            if s.dynamic_delay_s is not None
+            else f"{_series_name(s)} (time unknown)"
+            for s in members
+        )
+        notes.append(
+            QcNote(
+                QcLevel.INFO,
+                "dynamic-phases",
+                f"{role.value}: {len(members)} phases of one dynamic acquisition ({delays}); "
+                f"every phase is measured for the dynamic curve, {_series_name(pick)} gives "
+                f"the {role.value} signal and enhancement",
+            )
+        )
+    return phases, notes
 
 
 def _series_name(stack: Stack) -> str:
@@ -408,6 +491,8 @@ def plan_report(
     inferred = index
     index, forced = apply_role_overrides(index, case.roles, case_name=case.path.name)
     measured, notes = choose_measured(index, forced)
+    phases, phase_notes = choose_phases(index, measured)
+    notes += phase_notes
     qc = [QcNote(QcLevel.WARNING, "study", w) for w in index.warnings]
     qc += override_notes(inferred, index) + notes
     if index.skipped:
@@ -456,6 +541,7 @@ def plan_report(
         anchor_note=anchor_note,
         viewer_keys=dict(viewer_keys),
         roi_settings=roi_settings,
+        phases=phases,
     )
 
 
@@ -470,24 +556,63 @@ def load_series(plan: ReportPlan, *, progress: Progress | None = None) -> dict[R
     return images
 
 
+def load_phases(plan: ReportPlan, *, progress: Progress | None = None) -> dict[str, sitk.Image]:
+    """The pixels of every dynamic phase other than the measured stack of its role, keyed by
+    ``Stack.key`` (as :func:`load_series`)."""
+    extra = _extra_phases(plan)
+    images: dict[str, sitk.Image] = {}
+    for done, stack in enumerate(extra):
+        say(
+            progress,
+            f"loading phase {stack.dynamic_phase}: {_series_name(stack)}",
+            done,
+            len(extra),
+        )
+        images[stack.key] = load_stack(stack)
+    return images
+
+
+def _extra_phases(plan: ReportPlan) -> list[Stack]:
+    measured = {s.key for s in plan.measured.values()}
+    return [s for group in plan.phases.values() for s in group if s.key not in measured]
+
+
 def align_series(
-    plan: ReportPlan, images: Mapping[Role, sitk.Image], *, progress: Progress | None = None
+    plan: ReportPlan,
+    images: Mapping[Role, sitk.Image],
+    *,
+    progress: Progress | None = None,
+    phase_images: Mapping[str, sitk.Image] | None = None,
 ) -> AlignedStudy:
     """Each measured series' alignment to the anchor: identity for the anchor; a rigid
     registration on the ROIs' neighbourhood when the plan registers, or when the series is in
     another frame of reference than the anchor (always, with a note when registration is off);
-    else the scanner's frame of reference. Registration warnings become qc notes."""
+    else the scanner's frame of reference. Registration warnings become qc notes.
+
+    ``phase_images`` (:func:`load_phases`) are aligned the same way, each on its own: a
+    patient may move between the phases of a dynamic acquisition. Every series to register goes
+    to one :func:`sigreport.align.register_series` call (the anchor's pyramid built once, the
+    series in parallel)."""
     anchor = plan.anchor
     settings = plan.lexicon.alignment
-    # The ROIs' box; register_rigid adds the lexicon's margin of anatomy around it.
+    # The ROIs' box; register_series adds the lexicon's margin of anatomy around it.
     box = union_bounds(plan.regions)
     alignments: dict[Role, Alignment] = {}
+    phase_alignments: dict[str, Alignment] = {}
     qc: list[QcNote] = []
-    to_register: dict[Role, sitk.Image] = {}
-    other_frames: set[Role] = set()
-    for role, stack in plan.measured.items():
-        if role is plan.anchor_role:
-            alignments[role] = replace(identity_alignment("identity"), displacement_mm=0.0)
+    phase_images = phase_images or {}
+    extra = [s for s in _extra_phases(plan) if s.key in phase_images]
+    # Keys: the role of a measured series, the stack key (a plain str) of an extra phase.
+    jobs: list[tuple[Role | str, Stack, sitk.Image, str]] = [
+        (role, stack, images[role], role.value) for role, stack in plan.measured.items()
+    ] + [(s.key, s, phase_images[s.key], f"{s.role.value} phase {s.dynamic_phase}") for s in extra]
+    names = {key: name for key, _, _, name in jobs}
+    to_register: dict[Role | str, sitk.Image] = {}
+    other_frames: set[Role | str] = set()
+    found: dict[Role | str, Alignment] = {}
+    for key, stack, image, _ in jobs:
+        if key is plan.anchor_role:
+            found[key] = identity_alignment("identity")
             continue
         other_frame = (
             stack.frame_of_reference_uid is not None
@@ -495,43 +620,42 @@ def align_series(
             and stack.frame_of_reference_uid != anchor.frame_of_reference_uid
         )
         if plan.register or other_frame:
-            to_register[role] = images[role]
+            to_register[key] = image
             if other_frame:
-                other_frames.add(role)
+                other_frames.add(key)
         else:
-            alignments[role] = identity_alignment("frame-of-reference")
+            found[key] = identity_alignment("frame-of-reference")
     if to_register:
         say(
             progress,
-            f"registering {', '.join(r.value for r in to_register)} to {plan.anchor_role.value}",
+            f"registering {', '.join(names[k] for k in to_register)} to {plan.anchor_role.value}",
         )
         # One call: the anchor's pyramid is built once and the series run in parallel.
-        alignments.update(
+        found.update(
             register_series(images[plan.anchor_role], to_register, box_mm=box, settings=settings)
         )
-    # How far each series moved at the ROIs (docs/measurements.md, displacement_mm).
-    alignments = {
-        role: replace(alignments[role], displacement_mm=_box_displacement(alignments[role], box))
-        for role in plan.measured
-    }
-    for role, alignment in alignments.items():
-        if role in other_frames and not plan.register:
+    for key, _, _, name in jobs:
+        # How far each series moved at the ROIs (docs/measurements.md, displacement_mm).
+        alignment = replace(found[key], displacement_mm=_box_displacement(found[key], box))
+        if isinstance(key, Role):
+            alignments[key] = alignment
+        else:
+            phase_alignments[key] = alignment
+        if key in other_frames and not plan.register:
             qc.append(
                 QcNote(
                     QcLevel.INFO,
                     "registered-other-frame",
-                    f"{role.value} is in another frame of reference than the anchor; registered despite --no-register",
+                    f"{name} is in another frame of reference than the anchor; registered despite --no-register",
                 )
             )
         qc.extend(
-            QcNote(QcLevel.WARNING, "registration", f"{role.value}: {w}")
-            for w in alignment.warnings
+            QcNote(QcLevel.WARNING, "registration", f"{name}: {w}") for w in alignment.warnings
         )
         qc.extend(
-            QcNote(QcLevel.INFO, "registration-skipped", f"{role.value}: {n}")
-            for n in alignment.notes
+            QcNote(QcLevel.INFO, "registration-skipped", f"{name}: {n}") for n in alignment.notes
         )
-    return AlignedStudy(alignments=alignments, qc=tuple(qc))
+    return AlignedStudy(alignments=alignments, qc=tuple(qc), phase_alignments=phase_alignments)
 
 
 def place_rois(
@@ -581,9 +705,12 @@ def measure_study(
     aligned: AlignedStudy,
     *,
     progress: Progress | None = None,
+    phase_images: Mapping[str, sitk.Image] | None = None,
 ) -> StudyMeasurement:
     """Sample every ROI on every series (through its alignment) and measure it; the noise floor
-    of each series; each ROI's volume and largest diameter on the finest series.
+    of each series; each ROI's volume and largest diameter on the finest series. Every phase of
+    a dynamic acquisition is measured too (``phase_images``, :func:`load_phases`; the measured
+    phase of a role is re-used, not sampled twice).
 
     Returns the measured study (the input of characterization), the samples (for the key
     images) and the qc notes of ROIs that share voxels with a lesion.
@@ -621,6 +748,9 @@ def measure_study(
                 roi_id=spec.id,
                 role=role,
             )
+        by_phase = _measure_phases(
+            plan, spec, region, by_role, aligned, phase_images or {}, min_voxels
+        )
         finest = samples[(spec.id, finest_role)]
         on_anchor = samples[(spec.id, plan.anchor_role)]
         has_voxels = finest.n_voxels > 0
@@ -635,11 +765,57 @@ def measure_study(
                 diameters_mm=axial_diameters_mm(on_anchor, images[plan.anchor_role])
                 if on_anchor.n_voxels > 0
                 else None,
+                by_phase=by_phase,
             )
         )
-    study = MeasuredStudy(rois=tuple(measured_rois), stacks=dict(measured), noise_sigma=noise)
+    study = MeasuredStudy(
+        rois=tuple(measured_rois),
+        stacks=dict(measured),
+        noise_sigma=noise,
+        phases=dict(plan.phases),
+    )
     overlaps = _overlap_notes(plan.case, samples, plan.anchor_role)
     return StudyMeasurement(study=study, samples=samples, qc=tuple(overlaps))
+
+
+def _measure_phases(
+    plan: ReportPlan,
+    spec: RoiSpec,
+    region: Region,
+    by_role: Mapping[Role, SeriesMeasurement],
+    aligned: AlignedStudy,
+    phase_images: Mapping[str, sitk.Image],
+    min_voxels: int,
+) -> dict[str, SeriesMeasurement]:
+    """One ROI on every dynamic phase, keyed by ``Stack.key``."""
+    out: dict[str, SeriesMeasurement] = {}
+    for role, group in plan.phases.items():
+        for stack in group:
+            if stack.key == plan.measured[role].key:
+                out[stack.key] = by_role[role]
+                continue
+            image = phase_images.get(stack.key)
+            alignment = aligned.phase_alignments.get(stack.key)
+            if image is None or alignment is None:
+                continue
+            transform = alignment.transform
+            sample = sample_region(
+                region,
+                image,
+                to_region_space=transform.GetInverse() if transform is not None else None,
+            )
+            out[stack.key] = measure_roi(
+                sitk.GetArrayViewFromImage(image)[sample.box],
+                sample.box_mask,
+                sample.box_weights,
+                image.GetSpacing(),
+                lesion=spec.kind is RoiKind.LESION,
+                min_voxels=min_voxels,
+                rules=plan.lexicon.rules,
+                roi_id=spec.id,
+                role=role,
+            )
+    return out
 
 
 def characterize_study(
@@ -648,7 +824,7 @@ def characterize_study(
     """Ratios, grades, enhancement, suppression, flow void, controls and behaviour, with the
     run's lexicon (:func:`sigreport.measure.characterize`)."""
     say(progress, "characterizing")
-    return characterize(measurement.study, plan.lexicon.rules)
+    return characterize(measurement.study, plan.lexicon.rules, families=plan.lexicon.families)
 
 
 def analyze_case(
@@ -703,9 +879,10 @@ def analyze_case(
         use_cache=use_cache,
     )
     images = load_series(plan, progress=progress)
-    aligned = align_series(plan, images, progress=progress)
+    phase_images = load_phases(plan, progress=progress)
+    aligned = align_series(plan, images, progress=progress, phase_images=phase_images)
     plan, placed = place_rois(plan, images, aligned, progress=progress)
-    measurement = measure_study(plan, images, aligned, progress=progress)
+    measurement = measure_study(plan, images, aligned, progress=progress, phase_images=phase_images)
     result = characterize_study(plan, measurement, progress=progress)
     qc = [*plan.qc, *aligned.qc, *placed.qc, *measurement.qc, *result.qc]
     if plan.anchor_note is not None:
@@ -718,6 +895,7 @@ def analyze_case(
         result,
         qc,
         cautions=lexicon.cautions,
+        phase_alignments=aligned.phase_alignments,
     )
     key_slices = build_key_slices(
         plan.case, images, measurement.samples, plan.measured, anchor=plan.anchor_role
@@ -731,6 +909,7 @@ def analyze_case(
         aligned=aligned,
         measurement=measurement,
         files=dict(placed.files),
+        phase_images=phase_images,
     )
 
 

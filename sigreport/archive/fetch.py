@@ -179,14 +179,15 @@ def fetch_needed_series(
             f"{archive.url}: no series of study {study.study_uid} has a role that can be "
             "measured (all UNKNOWN)"
         )
-    wanted = list(dict.fromkeys(s.series_instance_uid for s in measured.values()))
+    # Every phase of a dynamic acquisition is measured too (pipeline.choose_phases).
+    needed: dict[str, Stack] = {r.value: s for r, s in measured.items()}
+    needed.update(_phase_stacks(study.index, measured, roles or {}, case_name))
+    wanted = list(dict.fromkeys(s.series_instance_uid for s in needed.values()))
     dest = Path(dest)
     dest.mkdir(parents=True, exist_ok=True)
     n_instances = 0
     for k, series_uid in enumerate(wanted, start=1):
-        roles_here = ", ".join(
-            r.value for r, s in measured.items() if s.series_instance_uid == series_uid
-        )
+        roles_here = ", ".join(r for r, s in needed.items() if s.series_instance_uid == series_uid)
         _say(progress, f"fetching series {series_uid} ({roles_here})")
         folder = dest / SERIES_FOLDER.format(k)
         folder.mkdir()
@@ -194,13 +195,33 @@ def fetch_needed_series(
             ds.save_as(folder / INSTANCE_FILE.format(n), enforce_file_format=True)
             n_instances += 1
     local = index_study(dest, site_lexicon=site_lexicon)
-    index = _merge(study.index, local, measured)
+    index = _merge(study.index, local, needed)
     return FetchedStudy(
         study_dir=dest, index=index, fetched_series=tuple(wanted), n_instances=n_instances
     )
 
 
-def _merge(remote: StudyIndex, local: StudyIndex, measured: Mapping[Role, Stack]) -> StudyIndex:
+def _phase_stacks(
+    index: StudyIndex,
+    measured: Mapping[Role, Stack],
+    roles: Mapping[Role, int | str],
+    case_name: str,
+) -> dict[str, Stack]:
+    """The dynamic phases other than each role's measured stack, keyed ``"<ROLE> phase <n>"``."""
+    from sigreport.pipeline import apply_role_overrides, choose_phases
+
+    index, _ = apply_role_overrides(index, roles, case_name=case_name)
+    phases, _notes = choose_phases(index, measured)
+    keys = {s.key for s in measured.values()}
+    return {
+        f"{role.value} phase {s.dynamic_phase}": s
+        for role, group in phases.items()
+        for s in group
+        if s.key not in keys
+    }
+
+
+def _merge(remote: StudyIndex, local: StudyIndex, measured: Mapping[str, Stack]) -> StudyIndex:
     """The whole study's index with the fetched stacks (real files) in place of their
     metadata twins."""
     by_key = {s.key: s for s in local.stacks}
@@ -209,7 +230,7 @@ def _merge(remote: StudyIndex, local: StudyIndex, measured: Mapping[Role, Stack]
         if twin is None or len(twin.instances) != len(stack.instances):
             got = "missing" if twin is None else f"{len(twin.instances)} images"
             raise InputError(
-                f"series {stack.series_instance_uid} ({role.value}): the retrieved instances do "
+                f"series {stack.series_instance_uid} ({role}): the retrieved instances do "
                 f"not match the archive's metadata ({len(stack.instances)} images expected, "
                 f"{got})"
             )

@@ -15,6 +15,20 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field, replace
 from typing import Any
 
+from sigreport.measure.families import (
+    ChemicalShiftResult,
+    DiffusionResult,
+    DynamicResult,
+    FamilyThresholds,
+    PhaseInput,
+    SusceptibilityResult,
+    adc_units_ok,
+    chemical_shift_of,
+    diffusion_of,
+    dynamic_of,
+    pair_mismatch,
+    susceptibility_of,
+)
 from sigreport.measure.rules import (
     Rules,
     grade_of,
@@ -26,7 +40,9 @@ from sigreport.measure.rules import (
 )
 from sigreport.model import (
     ENHANCEMENT_PAIRS,
+    PRE_CONTRAST_OF,
     SUPPRESSION_PAIRS,
+    UNGRADED_ROLES,
     Acquisition,
     BehaviourPhrase,
     EnhancementPattern,
@@ -41,6 +57,7 @@ from sigreport.model import (
     RoiStats,
     Role,
     SeriesMeasurement,
+    Stack,
     first_pair,
 )
 
@@ -151,6 +168,11 @@ class LesionResult:
     # Rules whose condition held but which assume another reference tissue (behaviour.toml).
     behaviour_not_applied: tuple[str, ...] = ()
     not_applied_phrases: tuple[BehaviourPhrase, ...] = ()
+    # Other sequence families (docs/measurements.md); None when the study lacks the pair.
+    diffusion: DiffusionResult | None = None
+    susceptibility: SusceptibilityResult | None = None
+    chemical_shift: ChemicalShiftResult | None = None
+    dynamic: DynamicResult | None = None
 
     def phrases(self) -> LesionPhrases:
         """The words the report renders: the graded wording per series and the behaviour."""
@@ -179,8 +201,23 @@ class LesionResult:
             "enhancement": self.enhancement.to_json(),
             "suppression": {kind: s.to_json() for kind, s in self.suppression.items()},
             "flow_void": self.flow_void,
+            **self.families_json(),
             "behaviour": list(self.behaviour),
             "behaviour_not_applied": list(self.behaviour_not_applied),
+        }
+
+    def families_json(self) -> dict[str, Any]:
+        """``diffusion``, ``susceptibility``, ``chemical_shift`` and ``dynamic`` as findings.json
+        holds them (null when the study lacks the pair)."""
+        return {
+            "diffusion": None if self.diffusion is None else self.diffusion.to_json(),
+            "susceptibility": None
+            if self.susceptibility is None
+            else self.susceptibility.to_json(),
+            "chemical_shift": None
+            if self.chemical_shift is None
+            else self.chemical_shift.to_json(),
+            "dynamic": None if self.dynamic is None else self.dynamic.to_json(),
         }
 
 
@@ -192,6 +229,8 @@ class Characterization:
     lesions: tuple[LesionResult, ...] = ()
     rois: tuple[dict[str, Any], ...] = ()
     qc: tuple[QcNote, ...] = ()
+    # findings.json series[].adc_units_ok of the measured ADC map (None: not checked).
+    adc_units_ok: bool | None = None
 
 
 # --------------------------------------------------------------------------------------------
@@ -277,6 +316,10 @@ class _Context:
     pattern_pairs: dict[tuple[tuple[Role, Role], tuple[Role, Role]], list[str]] = field(
         default_factory=dict
     )
+    families: FamilyThresholds = field(default_factory=FamilyThresholds)
+    adc_units_ok: bool | None = None
+    # family pair name ("chemical_shift", "dynamic") -> why its two series do not compare
+    mismatched: dict[str, str] = field(default_factory=dict)
 
     def note(self, level: QcLevel, code: str, message: str) -> None:
         self.qc.append(QcNote(level, code, message))
@@ -301,8 +344,11 @@ def _normalized_median(
 # The stage
 
 
-def characterize(measured: MeasuredStudy, rules: Rules) -> Characterization:
-    """Ratios, grades, enhancement, suppression, flow void, controls and behaviour.
+def characterize(
+    measured: MeasuredStudy, rules: Rules, *, families: FamilyThresholds | None = None
+) -> Characterization:
+    """Ratios, grades, enhancement, suppression, flow void, controls and behaviour; diffusion,
+    susceptibility, chemical shift and dynamic curves where the study has their series.
 
     Parameters
     ----------
@@ -310,6 +356,9 @@ def characterize(measured: MeasuredStudy, rules: Rules) -> Characterization:
         Every ROI measured on every measured series, the stacks, and the noise sigma per role.
     rules
         The lexicon (:func:`sigreport.measure.load_rules`).
+    families
+        The thresholds of the other sequence families (``families.toml``,
+        :func:`sigreport.measure.families.load_family_thresholds`); None: the defaults.
 
     Returns
     -------
@@ -338,6 +387,7 @@ def characterize(measured: MeasuredStudy, rules: Rules) -> Characterization:
             "fluid": first_pair(SUPPRESSION_PAIRS["fluid"], role_set),
             "fat": first_pair(SUPPRESSION_PAIRS["fat"], role_set),
         },
+        families=families if families is not None else FamilyThresholds(),
     )
     by_id = {roi.spec.id: roi for roi in measured.rois}
     references = [r for r in measured.rois if r.spec.kind is RoiKind.REFERENCE]
@@ -384,6 +434,9 @@ def characterize(measured: MeasuredStudy, rules: Rules) -> Characterization:
             entry["check"] = check
         roi_entries.append(entry)
 
+    _check_adc_units(ctx, references, controls)
+    _check_family_pairs(ctx)
+
     fat_pair = ctx.pairs["fat"]
     if lesions and fat_pair is not None and fat_pair[1] is Role.STIR:
         ctx.note(
@@ -403,7 +456,9 @@ def characterize(measured: MeasuredStudy, rules: Rules) -> Characterization:
             f"whose voxels are finer than those of {pair[0].value} -> {pair[1].value} (which "
             "gives the percent): thick slices average a thin rim into the core",
         )
-    return Characterization(lesions=results, rois=tuple(roi_entries), qc=tuple(ctx.qc))
+    return Characterization(
+        lesions=results, rois=tuple(roi_entries), qc=tuple(ctx.qc), adc_units_ok=ctx.adc_units_ok
+    )
 
 
 def _note_unmeasured(ctx: _Context) -> None:
@@ -432,6 +487,8 @@ def _check_homogeneous(ctx: _Context, ref: MeasuredRoi) -> None:
     limit = ctx.rules.thresholds.reference.max_cv
     high = []
     for role in ctx.roles:
+        if role in UNGRADED_ROLES:  # not normalized by the reference (fat fraction only)
+            continue
         m = ref.by_role.get(role)
         if m is None or m.stats is None or not m.stats.mean > 0:
             continue
@@ -540,6 +597,12 @@ def _lesion(ctx: _Context, lesion: MeasuredRoi, ref: MeasuredRoi | None) -> Lesi
             signal[role] = None
             ratios[role] = None
             continue
+        if role in UNGRADED_ROLES:
+            # Dixon water / fat images give the fat fraction from the lesion's own medians;
+            # a ratio to a reference tissue means nothing there (docs/measurements.md).
+            signal[role] = SignalResult(stats=m.stats)
+            ratios[role] = None
+            continue
         ref_median = _median(_measurement(ref, role))
         ratio = _ratio(m.stats.median, ref_median)
         if ref is not None and ref_median is not None and not ref_median > 0:
@@ -601,6 +664,8 @@ def _lesion(ctx: _Context, lesion: MeasuredRoi, ref: MeasuredRoi | None) -> Lesi
     facts["enhancing"] = enhancement.enhancing
     facts["pattern"] = enhancement.pattern
     facts["flow_void"] = flow_void
+    fam = _family_results(ctx, lesion, ref, signal, ratios)
+    facts.update(_family_facts(**fam))
     candidates = [rule for rule in rules.behaviour.values() if rule.matches(facts)]
     ref_tissue = rules.tissue(ref.spec.tissue) if ref is not None else None
     tissue_name = ref_tissue.name if ref_tissue is not None else None
@@ -636,6 +701,7 @@ def _lesion(ctx: _Context, lesion: MeasuredRoi, ref: MeasuredRoi | None) -> Lesi
             BehaviourPhrase(rule.key, rule.phrase, rule.considerations, rule.references)
             for rule in not_applied
         ),
+        **fam,
     )
 
 
@@ -842,3 +908,196 @@ def _flow_void(
         )
         return False
     return True
+
+
+# --------------------------------------------------------------------------------------------
+# Other sequence families: diffusion, susceptibility, chemical shift, dynamic contrast
+# (docs/measurements.md, "Other sequence families"; the numbers in sigreport.measure.families)
+
+
+def _check_adc_units(
+    ctx: _Context, references: list[MeasuredRoi], controls: list[MeasuredRoi]
+) -> None:
+    """``series[].adc_units_ok``: every reference or control ROI whose tissue has an expected
+    ADC (families.toml ``[adc.expected]``) must lie in its range on the ADC map; a map in other
+    units, or whose vendor scaling was not applied, fails (a qc warning)."""
+    if Role.ADC not in ctx.measured.stacks:
+        return
+    checked: list[tuple[MeasuredRoi, str, float, bool]] = []
+    for roi in (*references, *controls):
+        value = _median(roi.by_role.get(Role.ADC))
+        tissue = ctx.rules.tissue(roi.spec.tissue)
+        name = tissue.name if tissue is not None else roi.spec.tissue
+        ok = adc_units_ok(name, value, ctx.families)
+        if ok is not None and value is not None and name is not None:
+            checked.append((roi, name, value, ok))
+    stack = ctx.measured.stacks[Role.ADC]
+    series = f"series {stack.series_number}" if stack.series_number is not None else "the map"
+    if not checked:
+        ctx.note(
+            QcLevel.INFO,
+            "adc-units-unchecked",
+            f"ADC ({series}): no reference or control ROI of a tissue with an expected ADC "
+            "(families.toml [adc.expected]), so the map's scaling is not checked; ADC values "
+            "are reported as stored",
+        )
+        return
+    ctx.adc_units_ok = all(ok for *_, ok in checked)
+    ranges = ctx.families.adc_expected or {}
+    for roi, name, value, ok in checked:
+        if ok:
+            continue
+        low, high = ranges[name.lower()]
+        ctx.note(
+            QcLevel.WARNING,
+            "adc-units-implausible",
+            f"{roi.spec.id}: ADC ({series}) of {name} is {value:g}, outside its expected "
+            f"{low:g}-{high:g} x 10^-6 mm^2/s: the map's scaling is implausible (a vendor "
+            "scale not applied, or other units); lesion ADC values are not reported, their "
+            "ratios are",
+        )
+
+
+def _check_family_pairs(ctx: _Context) -> None:
+    """A qc warning ``pair-mismatched`` for an in/opposed-phase pair or a dynamic pre/phase pair
+    whose series are of different sequence types or timing (docs/measurements.md, pairs)."""
+    stacks = ctx.measured.stacks
+    limit = ctx.families.pair_max_timing_difference
+    pairs: list[tuple[str, Stack, Stack, bool]] = []
+    if Role.IP in stacks and Role.OP in stacks:
+        pairs.append(("chemical_shift", stacks[Role.IP], stacks[Role.OP], False))
+    post = _dynamic_role(ctx)
+    if post is not None and PRE_CONTRAST_OF[post] in stacks:
+        pairs.append(("dynamic", stacks[PRE_CONTRAST_OF[post]], ctx.measured.phases[post][0], True))
+    for name, a, b, echo in pairs:
+        why = pair_mismatch(
+            a.acquisition, b.acquisition, max_difference=limit, compare_echo_time=echo
+        )
+        if why is None:
+            continue
+        ctx.mismatched[name] = why
+        ctx.note(
+            QcLevel.WARNING,
+            "pair-mismatched",
+            f"{name.replace('_', ' ')}: {a.role.value} (series {a.series_number}) and "
+            f"{b.role.value} (series {b.series_number}) differ ({why}); the lesions' "
+            f"{name.replace('_', ' ')} flags are marked unreliable",
+        )
+
+
+def _dynamic_role(ctx: _Context) -> Role | None:
+    """The post-contrast role whose phases give the dynamic curve (T1POST first)."""
+    return next((r for r in PRE_CONTRAST_OF if len(ctx.measured.phases.get(r, ())) >= 2), None)
+
+
+def _core_ratio(lesion: MeasuredRoi, ref: MeasuredRoi | None, role: Role) -> float | None:
+    m = lesion.by_role.get(role)
+    core = m.core if m is not None else None
+    return _ratio(core.median if core is not None else None, _median(_measurement(ref, role)))
+
+
+def _family_results(
+    ctx: _Context,
+    lesion: MeasuredRoi,
+    ref: MeasuredRoi | None,
+    signal: Mapping[Role, SignalResult | None],
+    ratios: Mapping[Role, float | None],
+) -> dict[str, Any]:
+    """The lesion's ``diffusion``, ``susceptibility``, ``chemical_shift`` and ``dynamic``."""
+    th = ctx.families
+    stacks = ctx.measured.stacks
+    grades = {role: (s.grade if s is not None else None) for role, s in signal.items()}
+    out: dict[str, Any] = {}
+
+    diffusion = None
+    if Role.DWI in stacks and Role.ADC in stacks:
+        adc = signal.get(Role.ADC)
+        value = adc.stats.median if adc is not None and ctx.adc_units_ok is not False else None
+        diffusion = diffusion_of(
+            grades.get(Role.DWI),
+            grades.get(Role.ADC),
+            dwi_ratio=ratios.get(Role.DWI),
+            adc_ratio=ratios.get(Role.ADC),
+            adc_value=value,
+            b_value=stacks[Role.DWI].acquisition.b_value,
+        )
+    out["diffusion"] = diffusion
+
+    out["susceptibility"] = susceptibility_of(ratios, grades, th)
+
+    has_pair = Role.IP in stacks and Role.OP in stacks
+    ip, op = ratios.get(Role.IP), ratios.get(Role.OP)
+    if has_pair and th.chemical_shift_use_core:
+        core_ip, core_op = _core_ratio(lesion, ref, Role.IP), _core_ratio(lesion, ref, Role.OP)
+        if core_ip is not None and core_op is not None:
+            ip, op = core_ip, core_op
+        elif ip is not None and op is not None:
+            ctx.note(
+                QcLevel.INFO,
+                "chemical-shift-whole-roi",
+                f"{lesion.spec.id}: too small to split into shell and core; the in- to "
+                "opposed-phase drop is measured on the whole ROI (a fat-water border's dark "
+                "line may lower it)",
+            )
+    water = _median(lesion.by_role.get(Role.WATER))
+    fat = _median(lesion.by_role.get(Role.FAT))
+    out["chemical_shift"] = chemical_shift_of(
+        ip,
+        op,
+        water_median=water,
+        fat_median=fat,
+        has_pair=has_pair,
+        has_dixon=Role.WATER in stacks and Role.FAT in stacks,
+        thresholds=th,
+        reliable="chemical_shift" not in ctx.mismatched,
+    )
+
+    dynamic = None
+    post = _dynamic_role(ctx)
+    if post is not None and PRE_CONTRAST_OF[post] in stacks:
+        phases = []
+        for stack in ctx.measured.phases[post]:
+            own = _median(lesion.by_phase.get(stack.key))
+            base = _median(ref.by_phase.get(stack.key)) if ref is not None else None
+            phases.append(
+                PhaseInput(
+                    series_number=stack.series_number,
+                    time_s=stack.acquisition.acquisition_time_s,
+                    temporal_position=stack.acquisition.temporal_position,
+                    ratio=_ratio(own, base),
+                )
+            )
+        dynamic = dynamic_of(
+            PRE_CONTRAST_OF[post],
+            ratios.get(PRE_CONTRAST_OF[post]),
+            phases,
+            th,
+            min_peak_percent=ctx.rules.thresholds.enhancement.enhancing_min_percent,
+        )
+        if dynamic is not None and "dynamic" in ctx.mismatched:
+            dynamic = replace(dynamic, reliable=False)
+    out["dynamic"] = dynamic
+    return out
+
+
+def _family_facts(
+    diffusion: DiffusionResult | None,
+    susceptibility: SusceptibilityResult | None,
+    chemical_shift: ChemicalShiftResult | None,
+    dynamic: DynamicResult | None,
+) -> dict[str, Any]:
+    """The behaviour rules' facts from the other sequence families; an unreliable flag (a
+    mismatched pair) is unknown."""
+    facts: dict[str, Any] = {}
+    if diffusion is not None:
+        facts["restricted"] = diffusion.restricted
+        facts["shine_through"] = diffusion.shine_through
+    if susceptibility is not None:
+        facts["blooming"] = susceptibility.blooming if susceptibility.reliable else None
+    if chemical_shift is not None:
+        facts["microscopic_fat"] = (
+            chemical_shift.microscopic_fat if chemical_shift.reliable else None
+        )
+    if dynamic is not None:
+        facts["curve"] = dynamic.curve if dynamic.reliable else None
+    return facts

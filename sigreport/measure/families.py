@@ -117,11 +117,19 @@ def load_family_thresholds(site: Path | str | None = None) -> FamilyThresholds:
 # Pairs
 
 
-def pair_mismatch(a: Acquisition, b: Acquisition, *, max_difference: float = 0.20) -> str | None:
+def pair_mismatch(
+    a: Acquisition,
+    b: Acquisition,
+    *,
+    max_difference: float = 0.20,
+    compare_echo_time: bool = True,
+) -> str | None:
     """Why two series of a pair cannot be compared directly, or None when they can.
 
     Different sequence types (spin echo vs gradient echo, 2-D vs 3-D) or a TR or TE that differ
     by more than ``max_difference`` of the larger value (docs/measurements.md, pairs).
+    ``compare_echo_time=False`` for a pair whose echo times differ by design (in- and
+    opposed-phase echoes).
     """
     reasons = []
     kind_a, kind_b = _echo_kind(a), _echo_kind(b)
@@ -130,10 +138,10 @@ def pair_mismatch(a: Acquisition, b: Acquisition, *, max_difference: float = 0.2
     dim_a, dim_b = a.mr_acquisition_type, b.mr_acquisition_type
     if dim_a and dim_b and dim_a != dim_b:
         reasons.append(f"{dim_a} vs {dim_b}")
-    for name, x, y in (
-        ("TR", a.repetition_time_ms, b.repetition_time_ms),
-        ("TE", a.echo_time_ms, b.echo_time_ms),
-    ):
+    timings = [("TR", a.repetition_time_ms, b.repetition_time_ms)]
+    if compare_echo_time:
+        timings.append(("TE", a.echo_time_ms, b.echo_time_ms))
+    for name, x, y in timings:
         if x is None or y is None or not (_finite(x) and _finite(y)) or max(x, y) <= 0:
             continue
         if abs(x - y) / max(x, y) > max_difference:
@@ -370,14 +378,18 @@ class DynamicResult:
     phases: tuple[PhaseResult, ...]
     peak_phase: int | None  # 1-based index into phases
     curve: str | None  # "persistent" | "plateau" | "washout"
+    reliable: bool = True
 
     def to_json(self) -> dict[str, Any]:
-        return {
+        out: dict[str, Any] = {
             "pre": self.pre.value,
             "phases": [p.to_json() for p in self.phases],
             "peak_phase": self.peak_phase,
             "curve": self.curve,
         }
+        if not self.reliable:
+            out["reliable"] = False
+        return out
 
 
 def order_phases(phases: Sequence[PhaseInput]) -> list[PhaseInput]:
@@ -399,13 +411,18 @@ def dynamic_of(
     pre_ratio: float | None,
     phases: Sequence[PhaseInput],
     thresholds: FamilyThresholds,
+    *,
+    min_peak_percent: float | None = None,
 ) -> DynamicResult | None:
     """Percent enhancement of each post phase against the pre phase, the peak, and the curve.
 
     The early peak is the highest percent among phases acquired at most
     ``early_peak_max_delay_s`` after the first post phase; the curve is ``persistent`` when the
     last phase exceeds it by more than ``band_percent`` of it, ``washout`` when it is lower by
-    more than that, else ``plateau``. None with fewer than two phases.
+    more than that, else ``plateau``. None with fewer than two phases. With
+    ``min_peak_percent`` (the enhancing threshold), a lesion whose early peak stays below it
+    gets no curve: the three types describe how an enhancing lesion's signal evolves, and a
+    percent near zero makes the +-band a band of noise.
     """
     if len(phases) < 2:
         return None
@@ -429,7 +446,12 @@ def dynamic_of(
     ]
     last = results[-1].percent
     curve = None
-    if early and last is not None and len(results) >= 2:
+    if (
+        early
+        and last is not None
+        and len(results) >= 2
+        and (min_peak_percent is None or max(early) >= min_peak_percent)
+    ):
         peak = max(early)
         band = thresholds.curve_band_percent / 100.0 * abs(peak)
         last = round(last, _PERCENT_DECIMALS)

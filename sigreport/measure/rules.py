@@ -44,7 +44,15 @@ RULE_FLAGS = (
     "fat_suppression_specific",
     "enhancing",
     "flow_void",
+    # Other sequence families (docs/measurements.md): diffusion, susceptibility, chemical shift.
+    "restricted",
+    "shine_through",
+    "blooming",
+    "microscopic_fat",
 )
+
+#: The dynamic curve types a rule's ``curve`` may name (docs/measurements.md, dynamic).
+CURVE_TYPES = ("persistent", "plateau", "washout")
 
 #: Decimal places findings.json prints; thresholds are compared with values rounded this way.
 RATIO_DECIMALS = 4
@@ -298,7 +306,8 @@ class BehaviourRule:
 _ROLE_KEYS = {r.value for r in Role if r is not Role.UNKNOWN}
 _GRADES = {g.value for g in Grade}
 _PATTERNS = {p.value for p in EnhancementPattern}
-_CONDITION_KEYS = _ROLE_KEYS | set(RULE_FLAGS) | {"pattern", "any_of", "not"}
+_CURVES = set(CURVE_TYPES)
+_CONDITION_KEYS = _ROLE_KEYS | set(RULE_FLAGS) | {"pattern", "curve", "any_of", "not"}
 
 
 def _check_condition(cond: Any, where: str) -> None:
@@ -307,8 +316,8 @@ def _check_condition(cond: Any, where: str) -> None:
     lexicon.check_keys(cond, _CONDITION_KEYS, where)
     for key, value in cond.items():
         here = f"{where}.{key}"
-        if key in _ROLE_KEYS or key == "pattern":
-            allowed = _GRADES if key in _ROLE_KEYS else _PATTERNS
+        if key in _ROLE_KEYS or key in ("pattern", "curve"):
+            allowed = _GRADES if key in _ROLE_KEYS else _PATTERNS if key == "pattern" else _CURVES
             values = value if isinstance(value, list) else [value]
             if not values or not all(isinstance(v, str) and v in allowed for v in values):
                 raise InputError(

@@ -18,6 +18,7 @@ from sigreport import __version__
 from sigreport.measure.characterize import Characterization
 from sigreport.measure.rules import Rules, grade_phrase
 from sigreport.model import (
+    PRE_CONTRAST_OF,
     Alignment,
     BehaviourPhrase,
     LesionPhrases,
@@ -49,6 +50,7 @@ def build_findings(
     qc: Sequence[QcNote],
     *,
     cautions: Sequence[str],
+    phase_alignments: Mapping[str, Alignment] | None = None,
 ) -> dict[str, Any]:
     """The findings.json object (schema ``sigreport-findings/2``, docs/findings.schema.json;
     what changed from /1 is in docs/CHANGES.md).
@@ -70,8 +72,12 @@ def build_findings(
         put first (:func:`dedupe_qc`).
     cautions
         The cautions every report carries (the lexicon's ``cautions.toml``).
+    phase_alignments
+        The alignment of each dynamic phase that is not its role's measured stack, keyed by
+        ``Stack.key``: those phases are measured (for ``dynamic``) and listed so.
     """
     measured_keys = {s.key: r for r, s in measured.items()}
+    phase_alignments = phase_alignments or {}
     series = []
     for stack in sorted(index.stacks, key=lambda s: (s.series_number or 0, s.stack or "")):
         role = measured_keys.get(stack.key)
@@ -88,6 +94,15 @@ def build_findings(
         if role is not None:
             entry["alignment"] = alignments[role].to_json()
             entry["anchor"] = role is anchor_role
+        elif stack.key in phase_alignments:
+            # Measured for the dynamic curve only: the role's signal is another phase's.
+            entry["measured"] = True
+            entry["alignment"] = phase_alignments[stack.key].to_json()
+            entry["anchor"] = False
+            entry["in_signal"] = False
+        entry.update(
+            _family_series_fields(stack, result.adc_units_ok if role is Role.ADC else None)
+        )
         series.append(entry)
     study = index.study
     return {
@@ -110,6 +125,21 @@ def build_findings(
         "qc": [note.to_json() for note in dedupe_qc(qc)],
         "cautions": list(cautions),
     }
+
+
+def _family_series_fields(stack: Stack, adc_units_ok: bool | None) -> dict[str, Any]:
+    """``phase`` and ``delay_s`` of a post-contrast series, ``b_value`` of a DWI series,
+    ``adc_units_ok`` of the measured ADC map (docs/findings.schema.json, series)."""
+    out: dict[str, Any] = {}
+    if stack.role in PRE_CONTRAST_OF:
+        out["phase"] = stack.dynamic_phase
+        out["delay_s"] = None if stack.dynamic_delay_s is None else round(stack.dynamic_delay_s, 1)
+    elif stack.role is Role.DWI:
+        b = stack.acquisition.b_value
+        out["b_value"] = None if b is None else round(float(b), 1)
+    elif stack.role is Role.ADC:
+        out["adc_units_ok"] = adc_units_ok
+    return out
 
 
 def dedupe_qc(notes: Sequence[QcNote]) -> list[QcNote]:

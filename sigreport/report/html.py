@@ -10,8 +10,8 @@ from typing import Any
 
 from markupsafe import Markup
 
-from sigreport.model import LesionPhrases
-from sigreport.report.images import lesion_points, ratio_plot_svg
+from sigreport.model import UNGRADED_ROLES, LesionPhrases
+from sigreport.report.images import lesion_points, ratio_plot_svg, time_intensity_svg
 from sigreport.report.layout import header_block, roi_blocks, series_rows, summary_table
 from sigreport.report.tables import ordered_roles, series_by_role
 from sigreport.report.text import environment, render_template
@@ -22,6 +22,28 @@ from sigreport.safetext import clean_strings
 def data_uri(png: bytes) -> str:
     """A ``data:image/png;base64,...`` URI (RFC 2397) of PNG bytes."""
     return "data:image/png;base64," + base64.b64encode(png).decode("ascii")
+
+
+def _curve_plot(source: Mapping[str, Any], lesion: Mapping[str, Any]) -> Markup | str:
+    """The time-intensity plot of a lesion with a ``dynamic`` field, else an empty string."""
+    dynamic = source.get("dynamic")
+    if not dynamic:
+        return ""
+    points = [
+        (float(p["delay_s"]), float(p["percent"]))
+        for p in dynamic.get("phases", [])
+        if p.get("delay_s") is not None and p.get("percent") is not None
+    ]
+    if not points:
+        return ""
+    # Built from numbers and escaped labels only (images.time_intensity_svg).
+    return Markup(
+        time_intensity_svg(
+            points,
+            title=f"{lesion['id']}: enhancement against {dynamic.get('pre')} by phase",
+            curve=dynamic.get("curve"),
+        )
+    )
 
 
 def render_html(
@@ -76,12 +98,17 @@ def render_html(
         # The SVG is built from numbers and escaped labels only (images.ratio_plot_svg).
         plot = Markup(
             ratio_plot_svg(
-                lesion_points(signal, ordered_roles(signal)),
+                # Dixon water / fat give the fat fraction, not a ratio: not plotted as missing.
+                lesion_points(
+                    signal, [r for r in ordered_roles(signal) if r not in UNGRADED_ROLES]
+                ),
                 iso_band=iso_band,
                 title=f"{lesion['id']}: ratio to {lesion['reference_tissue']}",
             )
         )
-        lesions.append({**lesion, "images": strip, "plot": plot})
+        lesions.append(
+            {**lesion, "images": strip, "plot": plot, "curve_plot": _curve_plot(source, lesion)}
+        )
     rois = roi_blocks(findings, {str(r.get("id")): () for r in findings.get("rois", [])})
     for roi in rois:
         roi["images"] = strip_of(roi["id"])

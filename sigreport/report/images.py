@@ -246,6 +246,82 @@ def ratio_plot_svg(
     return "".join(parts)
 
 
+def time_intensity_svg(
+    points: Sequence[tuple[float, float]],
+    *,
+    title: str = "",
+    curve: str | None = None,
+    width: int = 460,
+    height: int = 230,
+) -> str:
+    """An inline SVG (no script, no external reference) of a lesion's dynamic curve: percent
+    enhancement against the pre-contrast phase (y) by seconds after the first post-contrast
+    phase (x), one dot per phase joined in time order, 0 % dashed.
+
+    ``points`` are (delay_s, percent) of the phases with both known; ``curve`` (the curve type)
+    is printed beside the title. Every label is XML-escaped.
+    """
+    left, right, top, bottom = 44, 16, 26, 40
+    plot_w, plot_h = width - left - right, height - top - bottom
+    pts = sorted((float(d), float(p)) for d, p in points if math.isfinite(d) and math.isfinite(p))
+    x_max = _nice_ceiling(max([60.0] + [d for d, _ in pts]))
+    y_hi = _nice_ceiling(max([20.0] + [p * 1.1 for _, p in pts]))
+    y_lo = -_nice_ceiling(max([0.0] + [-p * 1.1 for _, p in pts])) if pts else 0.0
+    if y_lo == 0.0 and any(p < 0 for _, p in pts):
+        y_lo = -10.0
+
+    def x(value: float) -> float:
+        return left + plot_w * min(max(value, 0.0), x_max) / x_max
+
+    def y(value: float) -> float:
+        return top + plot_h * (1.0 - (min(max(value, y_lo), y_hi) - y_lo) / (y_hi - y_lo))
+
+    label = title + (f" ({curve})" if curve else "")
+    parts = [
+        f'<svg xmlns="http://www.w3.org/2000/svg" role="img" width="{width}" height="{height}" '
+        f'viewBox="0 0 {width} {height}" class="curve-plot">',
+        f"<title>{escape(label)}</title>",
+        f'<rect x="{left}" y="{top}" width="{plot_w}" height="{plot_h}" fill="#ffffff" '
+        'stroke="#999999" stroke-width="1"/>',
+        f'<line x1="{left}" x2="{left + plot_w}" y1="{y(0.0):.1f}" y2="{y(0.0):.1f}" '
+        'stroke="#666666" stroke-dasharray="4 3" stroke-width="1"/>',
+    ]
+    for tick in _ticks(y_hi):
+        parts.append(
+            f'<line x1="{left - 4}" x2="{left}" y1="{y(tick):.1f}" y2="{y(tick):.1f}" stroke="#333333"/>'
+            f'<text x="{left - 6}" y="{y(tick) + 3.5:.1f}" font-size="10" text-anchor="end" '
+            f'fill="#333333">{tick:g}</text>'
+        )
+    for tick in _ticks(x_max):
+        parts.append(
+            f'<text x="{x(tick):.1f}" y="{top + plot_h + 14}" font-size="10" '
+            f'text-anchor="middle" fill="#333333">{tick:g}</text>'
+        )
+    previous: tuple[float, float] | None = None
+    for delay, percent in pts:
+        cx, cy = x(delay), y(percent)
+        if previous is not None:
+            parts.append(
+                f'<line x1="{previous[0]:.1f}" y1="{previous[1]:.1f}" x2="{cx:.1f}" '
+                f'y2="{cy:.1f}" stroke="#a8461f" stroke-width="1.5"/>'
+            )
+        parts.append(
+            f'<circle cx="{cx:.1f}" cy="{cy:.1f}" r="4" fill="#a8461f" class="phase-point">'
+            f"<title>{delay:g} s: {percent:+.0f} %</title></circle>"
+        )
+        previous = (cx, cy)
+    parts.append(
+        f'<text x="{left}" y="{top - 9}" font-size="12" fill="#222222">{escape(label)}</text>'
+        f'<text x="{left + plot_w / 2:.1f}" y="{height - 6}" font-size="10" '
+        'text-anchor="middle" fill="#333333">seconds after the first post-contrast phase</text>'
+        f'<text x="12" y="{top + plot_h / 2:.1f}" font-size="10" fill="#333333" '
+        f'transform="rotate(-90 12 {top + plot_h / 2:.1f})" text-anchor="middle">'
+        "enhancement %</text>"
+    )
+    parts.append("</svg>")
+    return "".join(parts)
+
+
 def _nice_ceiling(value: float) -> float:
     for step in (0.5, 1.0, 2.0, 5.0, 10.0, 20.0, 50.0, 100.0):
         if value <= step * 8:

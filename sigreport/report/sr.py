@@ -35,6 +35,9 @@ UNIT_MM = Code("mm", "UCUM", "millimeter")
 UNIT_PERCENT = Code("%", "UCUM", "percent")
 UNIT_RATIO = Code("{ratio}", "UCUM", "ratio")
 UNIT_NONE = Code("1", "UCUM", "no units")
+# UCUM: 10^-6 mm^2/s, the unit ADC maps are stored in (PS3.16 CID 7181 lists it).
+UNIT_ADC = Code("10-6.mm2/s", "UCUM", "10^-6 mm2/s")
+UNIT_SECOND = Code("s", "UCUM", "second")
 
 # Signal grades: PS3.16 CID 6343 (RadLex codes).
 GRADE_CODES: dict[str, Code] = {
@@ -70,6 +73,28 @@ PATTERN_CODES = {
     "solid": private("PATTERN-SOLID", "Solid enhancement"),
     "rim": private("PATTERN-RIM", "Rim enhancement"),
     "heterogeneous": private("PATTERN-HETERO", "Heterogeneous enhancement"),
+}
+
+
+# The other sequence families (docs/measurements.md): DCM 113041 Apparent Diffusion Coefficient
+# and DCM 129100 Fat fraction (PS3.16 Annex D); the rest have no PS3.16 equivalent.
+ADC = codes.DCM.ApparentDiffusionCoefficient
+FAT_FRACTION = codes.DCM.FatFraction
+FAMILY_FLAGS = {
+    "restricted": private("RESTRICTED", "Restricted diffusion"),
+    "shine_through": private("SHINE-THROUGH", "T2 shine-through"),
+    "blooming": private("BLOOMING", "Susceptibility blooming"),
+    "microscopic_fat": private("MICRO-FAT", "Signal loss on opposed-phase images"),
+}
+SUSCEPTIBILITY_DROP = private("DROP-SUSCEPTIBILITY", "Signal drop on the susceptibility series")
+CHEMICAL_SHIFT_DROP = private("DROP-CHEMICAL-SHIFT", "In- to opposed-phase signal drop (core)")
+PHASE_ENHANCEMENT = private("ENH-PHASE-PCT", "Reference-normalized enhancement of a phase")
+PHASE_DELAY = private("PHASE-DELAY", "Delay after the first post-contrast phase")
+CURVE = private("CURVE", "Dynamic enhancement curve type")
+CURVE_CODES = {
+    "persistent": private("CURVE-PERSISTENT", "Persistent (type I)"),
+    "plateau": private("CURVE-PLATEAU", "Plateau (type II)"),
+    "washout": private("CURVE-WASHOUT", "Washout (type III)"),
 }
 
 
@@ -411,6 +436,9 @@ def _lesion_group(
             evaluations.append(
                 hd.sr.QualitativeEvaluation(reliable_name(kind), _yes_no(bool(flag["reliable"])))
             )
+    family_measurements, family_evaluations = _family_content(lesion)
+    measurements += family_measurements
+    evaluations += family_evaluations
     if lesion.get("flow_void") is not None:
         value = codes.SCT.Present if lesion["flow_void"] else codes.SCT.Absent
         evaluations.append(hd.sr.QualitativeEvaluation(FLOW_VOID, value))
@@ -583,6 +611,91 @@ def _roi_group(
         qualitative_evaluations=evaluations or None,
         source_images=own_images or None,
     )
+
+
+def _family_content(
+    lesion: Mapping[str, Any],
+) -> tuple[list[hd.sr.Measurement], list[hd.sr.QualitativeEvaluation]]:
+    """The lesion's diffusion, susceptibility, chemical-shift and dynamic values: the ADC in
+    10^-6 mm^2/s, drops and phase enhancement as percent, the fat fraction, the flags as
+    yes / no and the curve type. An unreliable flag (a mismatched pair) is left out."""
+    measurements: list[hd.sr.Measurement] = []
+    evaluations: list[hd.sr.QualitativeEvaluation] = []
+
+    def flag(name: str, value: Any) -> None:
+        if value is not None:
+            evaluations.append(
+                hd.sr.QualitativeEvaluation(FAMILY_FLAGS[name], _yes_no(bool(value)))
+            )
+
+    diffusion = lesion.get("diffusion") or {}
+    if diffusion.get("adc_1e-6_mm2_s") is not None:
+        measurements.append(
+            hd.sr.Measurement(
+                name=ADC,
+                value=float(diffusion["adc_1e-6_mm2_s"]),
+                unit=UNIT_ADC,
+                derivation=codes.cid7464.Median,
+                method=role_method("ADC"),
+            )
+        )
+    flag("restricted", diffusion.get("restricted"))
+    flag("shine_through", diffusion.get("shine_through"))
+    for key, name, concept in (
+        ("susceptibility", "blooming", SUSCEPTIBILITY_DROP),
+        ("chemical_shift", "microscopic_fat", CHEMICAL_SHIFT_DROP),
+    ):
+        pair = lesion.get(key) or {}
+        if pair.get("drop_percent") is not None:
+            measurements.append(
+                hd.sr.Measurement(
+                    name=concept,
+                    value=float(pair["drop_percent"]),
+                    unit=UNIT_PERCENT,
+                    method=private(
+                        f"PAIR-{key.upper().replace('_', '-')}",
+                        f"{pair.get('to')} against {pair.get('from')}",
+                    ),
+                )
+            )
+        if pair.get("reliable") is not False:
+            flag(name, pair.get(name))
+    cs = lesion.get("chemical_shift") or {}
+    if cs.get("fat_fraction_percent") is not None:
+        measurements.append(
+            hd.sr.Measurement(
+                name=FAT_FRACTION,
+                value=float(cs["fat_fraction_percent"]),
+                unit=UNIT_PERCENT,
+                method=private("DIXON", "100 F / (W + F) of the Dixon medians"),
+            )
+        )
+    dynamic = lesion.get("dynamic") or {}
+    for number, phase in enumerate(dynamic.get("phases") or [], start=1):
+        if phase.get("percent") is None:
+            continue
+        delay = phase.get("delay_s")
+        method = private(
+            f"PHASE-{number}",
+            f"Phase {number}" + (f" at {float(delay):g} s" if delay is not None else ""),
+        )
+        measurements.append(
+            hd.sr.Measurement(
+                name=PHASE_ENHANCEMENT,
+                value=float(phase["percent"]),
+                unit=UNIT_PERCENT,
+                method=method,
+            )
+        )
+        if delay is not None:
+            measurements.append(
+                hd.sr.Measurement(
+                    name=PHASE_DELAY, value=float(delay), unit=UNIT_SECOND, method=method
+                )
+            )
+    if dynamic.get("curve") in CURVE_CODES and dynamic.get("reliable") is not False:
+        evaluations.append(hd.sr.QualitativeEvaluation(CURVE, CURVE_CODES[dynamic["curve"]]))
+    return measurements, evaluations
 
 
 def write_sr(path: Path, sr: hd.sr.Comprehensive3DSR) -> None:

@@ -13,7 +13,8 @@ from sigreport.report.wording import role_sort_key
 COLUMNS: tuple[str, ...] = (
     "lesion", "site", "role", "series_number", "series_description", "n_voxels", "mean",
     "median", "sd", "p05", "p95", "ratio", "grade", "enhancement_percent",
-    "fluid_drop_percent", "fat_drop_percent", "notes",
+    "fluid_drop_percent", "fat_drop_percent", "adc_1e-6_mm2_s", "susceptibility_drop_percent",
+    "chemical_shift_drop_percent", "fat_fraction_percent", "dynamic_curve", "notes",
 )  # fmt: skip
 
 
@@ -23,6 +24,8 @@ def series_by_role(findings: Mapping[str, Any]) -> dict[str, Mapping[str, Any]]:
     for entry in findings.get("series", []):
         role = entry.get("role")
         if role is None:
+            continue
+        if entry.get("in_signal") is False:  # a dynamic phase measured for the curve only
             continue
         if role not in out or (entry.get("measured") and not out[role].get("measured")):
             out[role] = entry
@@ -112,9 +115,58 @@ def table_rows(findings: Mapping[str, Any]) -> list[dict[str, Any]]:
                     notes.append(f"{kind} {said} vs {flag.get('from')}")
                 if flag.get("reliable") is False:
                     notes.append(f"{kind} flag unreliable")
+            notes += family_cells(lesion, role, row, entry)
             row["notes"] = "; ".join(notes)
             rows.append(row)
     return rows
+
+
+def family_cells(
+    lesion: Mapping[str, Any], role: str, row: dict[str, Any], series: Mapping[str, Any]
+) -> list[str]:
+    """Fill the other sequence families' cells of one row (docs/measurements.md): the ADC
+    value on the ADC row, each drop on the row of the series it drops to, the fat fraction on
+    the FAT row, the curve on the dynamic post-contrast row. Returns the row's notes."""
+    notes: list[str] = []
+    diffusion = lesion.get("diffusion") or {}
+    if role == "ADC" and diffusion:
+        row["adc_1e-6_mm2_s"] = diffusion.get("adc_1e-6_mm2_s")
+        if series.get("adc_units_ok") is False:
+            notes.append("ADC map scaling implausible (see qc)")
+        if diffusion.get("restricted"):
+            notes.append("restricted diffusion (DWI bright, ADC dark)")
+        elif diffusion.get("shine_through"):
+            notes.append("T2 shine-through (DWI bright, ADC not dark)")
+    sus = lesion.get("susceptibility") or {}
+    if sus and sus.get("to") == role:
+        row["susceptibility_drop_percent"] = sus.get("drop_percent")
+        if sus.get("blooming") is not None:
+            notes.append(f"{'blooming' if sus['blooming'] else 'no blooming'} vs {sus.get('from')}")
+        if sus.get("reliable") is False:
+            notes.append("susceptibility flag unreliable")
+    cs = lesion.get("chemical_shift") or {}
+    if cs and cs.get("to") == role:
+        row["chemical_shift_drop_percent"] = cs.get("drop_percent")
+        if cs.get("microscopic_fat") is not None:
+            said = "drop suggests microscopic fat" if cs["microscopic_fat"] else "no fat drop"
+            notes.append(f"{said} vs {cs.get('from')} (core of the ROI)")
+        if cs.get("reliable") is False:
+            notes.append("chemical-shift flag unreliable")
+    if cs and role == "FAT":
+        row["fat_fraction_percent"] = cs.get("fat_fraction_percent")
+    dynamic = lesion.get("dynamic") or {}
+    if dynamic and role in ("T1POST", "T1POSTFS") and series.get("phase") is not None:
+        row["dynamic_curve"] = dynamic.get("curve")
+        phases = ", ".join(
+            f"{p['delay_s']:g} s {p['percent']:+.0f} %"
+            for p in dynamic.get("phases", [])
+            if p.get("delay_s") is not None and p.get("percent") is not None
+        )
+        if phases:
+            notes.append(f"dynamic vs {dynamic.get('pre')}: {phases}")
+        if dynamic.get("reliable") is False:
+            notes.append("dynamic curve unreliable")
+    return notes
 
 
 def rows_to_csv(rows: Sequence[Mapping[str, Any]]) -> str:

@@ -22,7 +22,7 @@ from jinja2.sandbox import ImmutableSandboxedEnvironment, SecurityError
 
 from sigreport import lexicon
 from sigreport.errors import InputError
-from sigreport.model import LesionPhrases, role_sort_key
+from sigreport.model import UNGRADED_ROLES, LesionPhrases, role_sort_key
 from sigreport.report.tables import NOT_ASSESSED, ordered_roles, series_by_role, table_rows
 from sigreport.report.wording import Wording, fill
 from sigreport.safetext import clean_strings
@@ -180,6 +180,8 @@ def lesion_sentences(
     for role in ordered_roles(signal):
         stats = signal[role]
         name = wording.role_name(role)
+        if stats is not None and role in UNGRADED_ROLES:
+            continue  # Dixon water / fat: the fat fraction, not a grade (family_sentences)
         if stats is None:
             unmeasured.append(name)
             continue
@@ -284,6 +286,7 @@ def lesion_sentences(
         if percent is not None and raw is not None and enhancement.get("basis") != "raw":
             out.append(fill(s["raw_percent"], "raw_percent", raw=_signed(raw)))
 
+    out += family_sentences(lesion, wording)
     if flow_void is False:
         out.append(s["no_flow_void"])
     change = change_sentence(lesion, wording)
@@ -404,6 +407,95 @@ def _size_sentence(lesion: Mapping[str, Any], wording: Wording) -> str:
     if volume is not None:
         return fill(s["size_volume_only"], "size_volume_only", volume_ml=_num(volume, 2))
     return s["size_unknown"]
+
+
+def family_sentences(lesion: Mapping[str, Any], wording: Wording) -> list[str]:
+    """Diffusion, susceptibility, chemical shift and dynamic sentences (wording.toml
+    ``[families]``), each only when the lesion has the field; "blooming" is said only when the
+    drop and the grade on both series are known (``blooming`` not null)."""
+    f = wording.families
+    out: list[str] = []
+
+    def add(key: str, **values: str) -> None:
+        out.append(fill(f[key], key, section="families", **values))
+
+    diffusion = lesion.get("diffusion")
+    if diffusion:
+        ratio = _num(diffusion.get("adc_ratio"), 2)
+        value = diffusion.get("adc_1e-6_mm2_s")
+        adc = (
+            fill(f["adc_value"], "adc_value", section="families", value=_num(value, 0), ratio=ratio)
+            if value is not None
+            else fill(f["adc_ratio_only"], "adc_ratio_only", section="families", ratio=ratio)
+        )
+        b = diffusion.get("b_value")
+        values = {"dwi": wording.role_name("DWI"), "b_value": _num(b, 0), "adc": adc}
+        if diffusion.get("restricted"):
+            add("restricted", **values)
+        elif diffusion.get("shine_through"):
+            add("shine_through", **values)
+        elif diffusion.get("restricted") is False:
+            add("no_restriction", **values)
+        else:
+            add("diffusion_unknown")
+    for name, flag, yes, no, unknown in (
+        ("susceptibility", "blooming", "blooming", "no_blooming", "susceptibility_unknown"),
+        (
+            "chemical_shift",
+            "microscopic_fat",
+            "microscopic_fat",
+            "no_microscopic_fat",
+            "chemical_shift_unknown",
+        ),
+    ):
+        pair = lesion.get(name)
+        if not pair or pair.get("from") is None:
+            continue
+        values = {
+            "from": wording.role_name(str(pair.get("from"))),
+            "to": wording.role_name(str(pair.get("to"))),
+            "drop": _num(pair.get("drop_percent"), 0),
+        }
+        if pair.get(flag) is None:
+            add(unknown, **values)
+        else:
+            add(yes if pair[flag] else no, **values)
+            if pair.get("reliable") is False:
+                add("unreliable")
+    cs = lesion.get("chemical_shift") or {}
+    if cs.get("fat_fraction_percent") is not None:
+        add("fat_fraction", fat_fraction=_num(cs["fat_fraction_percent"], 0))
+    dynamic = lesion.get("dynamic")
+    if dynamic:
+        items = [
+            fill(
+                f["dynamic_phase"],
+                "dynamic_phase",
+                section="families",
+                percent=_signed(p.get("percent")),
+                delay=_num(p.get("delay_s"), 0),
+            )
+            for p in dynamic.get("phases", [])
+        ]
+        values = {
+            "pre": wording.role_name(str(dynamic.get("pre"))),
+            "phases": wording.sentences["list_separator"].join(items),
+        }
+        peak = dynamic.get("peak_phase")
+        phases = dynamic.get("phases", [])
+        curve = dynamic.get("curve")
+        if curve is not None and peak is not None and 1 <= peak <= len(phases):
+            add(
+                "dynamic",
+                peak_delay=_num(phases[peak - 1].get("delay_s"), 0),
+                curve=f.get(f"curve_{curve}", str(curve)),
+                **values,
+            )
+            if dynamic.get("reliable") is False:
+                add("unreliable")
+        else:
+            add("dynamic_no_curve", **values)
+    return out
 
 
 def behaviour_sentences(

@@ -16,7 +16,7 @@ from sigreport.model import role_sort_key
 __all__ = ["WORDING_FILE", "Wording", "fill", "load_wording", "placeholders", "role_sort_key"]
 
 
-def fill(template: str, where: str, **values: str) -> str:
+def fill(template: str, where: str, *, section: str = "sentences", **values: str) -> str:
     """``template`` with its ``{name}`` placeholders replaced by ``values``, with an
     ``InputError`` naming the lexicon key when the site's wording uses a placeholder the report
     does not provide, or one that is not a plain name."""
@@ -25,6 +25,6 @@ def fill(template: str, where: str, **values: str) -> str:
         return template.format(**values)
     except (KeyError, IndexError, ValueError) as exc:
         raise InputError(
-            f"wording.toml [sentences] {where}: cannot fill {template!r} ({exc!r}); "
+            f"wording.toml [{section}] {where}: cannot fill {template!r} ({exc!r}); "
             f"available placeholders: {', '.join(sorted(values))}"
         ) from None

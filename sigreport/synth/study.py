@@ -397,7 +397,8 @@ def _sequence_family_truth(
             ]
             last = entries[-1]["percent"]
             curve = None
-            if early and last is not None:
+            # A lesion that does not enhance has no curve type (docs/measurements.md).
+            if early and last is not None and max(early) >= rules["enhancing_percent"]:
                 peak = max(early)
                 band = rules["curve_band_percent"] / 100.0 * abs(peak)
                 curve = (

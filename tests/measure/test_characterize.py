@@ -151,10 +151,18 @@ def test_lesion_json_has_exactly_the_contract_keys(build, rules):
         "enhancement",
         "suppression",
         "flow_void",
+        # version 2: the other sequence families, null without their series
+        "diffusion",
+        "susceptibility",
+        "chemical_shift",
+        "dynamic",
         "behaviour",
         "size",  # sigreport-findings/2 (docs/CHANGES.md)
         "behaviour_not_applied",
     }
+    assert [out[k] for k in ("diffusion", "susceptibility", "chemical_shift", "dynamic")] == [
+        None
+    ] * 4
     assert set(out["signal"]["T2"]) == {
         "n_voxels",
         "mean",

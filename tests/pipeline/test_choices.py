@@ -3,13 +3,19 @@ the case file's [roles] and [options] anchor)."""
 
 from __future__ import annotations
 
+from dataclasses import replace
 from pathlib import Path
 
 import pytest
 
 from sigreport.errors import InputError
 from sigreport.model import Acquisition, Case, Role, Stack, StudyIndex, StudyInfo
-from sigreport.pipeline import apply_role_overrides, choose_anchor, choose_measured
+from sigreport.pipeline import (
+    apply_role_overrides,
+    choose_anchor,
+    choose_measured,
+    choose_phases,
+)
 
 
 def _stack(
@@ -115,3 +121,38 @@ def test_anchor_is_the_series_a_mask_was_drawn_on_unless_the_case_names_one():
     assert choose_anchor(_case(anchor="2"), measured, [])[0] is Role.T1
     with pytest.raises(InputError, match="anchor = 'FLAIR' names no measured series"):
         choose_anchor(_case(anchor="FLAIR"), measured, [])
+
+
+def _phase(number: int, phase: int, delay: float, role: Role = Role.T1POSTFS) -> Stack:
+    return replace(
+        _stack(number, role, mode="3D"),
+        dynamic_group="1.2.3.7",
+        dynamic_phase=phase,
+        dynamic_delay_s=delay,
+    )
+
+
+def test_dynamic_phases_measure_the_last_and_keep_every_phase():
+    # docs/usage.md, dynamic: the role's signal is the last phase; every phase gives the curve
+    phases = [_phase(8 + k, k + 1, d) for k, d in enumerate((0.0, 60.0, 120.0))]
+    other = _stack(20, Role.T1POSTFS, (0.5, 0.5, 0.5))  # a finer single post series elsewhere
+    pre = replace(_stack(7, Role.T1FS, mode="3D"), dynamic_group="1.2.3.7")
+    index = _index(pre, *phases, other)
+    measured, notes = choose_measured(index, {})
+    assert measured[Role.T1POSTFS].series_number == 10
+    shared = [n for n in notes if n.code == "role-shared"]
+    assert len(shared) == 1 and "series 20" in shared[0].message
+    assert "series 8" not in shared[0].message  # the phases are not "other series"
+    chosen, phase_notes = choose_phases(index, measured)
+    assert [s.series_number for s in chosen[Role.T1POSTFS]] == [8, 9, 10]
+    assert [n.code for n in phase_notes] == ["dynamic-phases"]
+    # a pre-contrast series from another acquisition is named
+    alone = _index(_stack(7, Role.T1FS, mode="3D"), *phases)
+    chosen, phase_notes = choose_phases(alone, choose_measured(alone, {})[0])
+    assert "dynamic-pre-other-acquisition" in [n.code for n in phase_notes]
+    # the case file's [roles] may name another phase: its signal, the curve still from all
+    forced = {Role.T1POSTFS: phases[0].key}
+    measured, _ = choose_measured(index, forced)
+    assert measured[Role.T1POSTFS].series_number == 8
+    chosen, _ = choose_phases(index, measured)
+    assert [s.series_number for s in chosen[Role.T1POSTFS]] == [8, 9, 10]
