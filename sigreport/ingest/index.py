@@ -10,17 +10,31 @@ from pathlib import Path
 
 from sigreport.errors import InputError
 from sigreport.ingest.header import FrameRecord, SkipFile, read_frames
+from sigreport.ingest.identity import screen_duplicates, screen_series, select_study
 from sigreport.ingest.roles import _infer, load_role_bands
 from sigreport.ingest.stacks import build_stacks
 from sigreport.model import SkippedFile, StudyIndex, StudyInfo
 
 
-def _files(study_dir: Path) -> list[Path]:
+def _files(study_dir: Path) -> tuple[list[Path], list[SkippedFile]]:
+    """Every entry under ``study_dir`` that is not a folder, and the folders that could not be
+    listed (os.walk reports them to ``onerror``; by default it drops them silently)."""
     found: list[Path] = []
-    for root, dirs, names in os.walk(study_dir):
+    unreadable: list[SkippedFile] = []
+
+    def refused(exc: OSError) -> None:
+        reason = exc.strerror or type(exc).__name__
+        unreadable.append(
+            SkippedFile(
+                path=Path(exc.filename) if exc.filename else study_dir,
+                reason=f"folder not readable ({reason}): the files in it were not indexed",
+            )
+        )
+
+    for root, dirs, names in os.walk(study_dir, onerror=refused):
         dirs.sort()
         found.extend(Path(root) / name for name in sorted(names))
-    return found
+    return found, unreadable
 
 
 def index_study(
@@ -28,6 +42,8 @@ def index_study(
     *,
     progress: Callable[[int, int], None] | None = None,
     site_lexicon: Path | None = None,
+    study_uid: str | None = None,
+    require_one_study: bool = False,
 ) -> StudyIndex:
     """Index every DICOM file under ``study_dir`` (recursively, any file names).
 
@@ -44,11 +60,22 @@ def index_study(
         Called as ``progress(done, total)`` after each file.
     site_lexicon
         A site lexicon folder (its ``roles.toml`` replaces the bundled one).
+    study_uid
+        Keep only this StudyInstanceUID (the case file's ``study_uid``); other studies' files
+        are listed as skipped.
+    require_one_study
+        Raise ``InputError`` when the folder (after ``study_uid``) holds more than one study or
+        patient; without it these are ``StudyIndex.warnings``.
+
+    Files of a series whose study, patient or frame of reference differ from the rest of the
+    series, and files that share a SOPInstanceUID with different content, are left out and
+    listed as skipped (``sigreport.ingest.identity``).
 
     Raises
     ------
     InputError
-        When ``study_dir`` does not exist or is not a folder, or the roles lexicon is invalid.
+        When ``study_dir`` does not exist or is not a folder, the roles lexicon is invalid,
+        ``study_uid`` names no study of the folder, or ``require_one_study`` fails.
     """
     study_dir = Path(study_dir)
     if not study_dir.exists():
@@ -56,32 +83,43 @@ def index_study(
     if not study_dir.is_dir():
         raise InputError(f"study folder {study_dir} is not a folder")
     bands = load_role_bands(site_lexicon)
-    files = _files(study_dir)
+    files, skipped = _files(study_dir)
     records: list[FrameRecord] = []
-    skipped: list[SkippedFile] = []
     total = len(files)
     for done, path in enumerate(files, start=1):
         try:
             records.extend(read_frames(path))
         except SkipFile as exc:
-            skipped.append(SkippedFile(path=path, reason=str(exc)))
+            skipped.append(
+                SkippedFile(
+                    path=path,
+                    reason=str(exc),
+                    series_number=exc.series_number,
+                    series_instance_uid=exc.series_instance_uid,
+                    description=exc.description,
+                )
+            )
         except RecursionError:
             skipped.append(SkippedFile(path=path, reason="not readable: nesting too deep"))
         if progress is not None:
             progress(done, total)
+
+    # A stray file inside a series first (it is named precisely), then the folder's studies.
+    records, other = screen_series(records)
+    skipped.extend(other)
+    records, other, warnings = select_study(
+        records, study_uid=study_uid, require_one=require_one_study, where=str(study_dir)
+    )
+    skipped.extend(other)
+    records, other = screen_duplicates(records, study_dir=study_dir)
+    skipped.extend(other)
 
     stacks = []
     for stack in build_stacks(records):
         role, reason, confidence = _infer(stack.acquisition, stack.description, bands)
         stacks.append(replace(stack, role=role, role_reason=reason, confidence=confidence))
 
-    warnings: list[str] = []
     study_uids = Counter(r.study.study_instance_uid for r in records)
-    if len(study_uids) > 1:
-        warnings.append(
-            f"{len(study_uids)} StudyInstanceUIDs in the folder; study details are from the most "
-            "common one"
-        )
     study = StudyInfo()
     if records:
         main_uid = study_uids.most_common(1)[0][0]
