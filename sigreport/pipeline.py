@@ -22,6 +22,7 @@ import SimpleITK as sitk
 
 from sigreport import __version__, lexicon
 from sigreport.errors import InputError
+from sigreport.ingest.explain import why_absent
 from sigreport.model import (
     Alignment,
     Case,
@@ -85,6 +86,7 @@ def apply_role_overrides(
             what = f"series number {target}" if isinstance(target, int) else f"series {target}"
             raise InputError(
                 f"{case_name}: [roles] {role.value} = {target!r}: no {what} in the study"
+                + why_absent(index, target)
             )
         # A split series: the finest of its stacks carries the role.
         best = min(matches, key=lambda i: stacks[i].voxel_volume_mm3)
@@ -227,6 +229,7 @@ def run_report(
     """
     from sigreport.align import identity_alignment, register_rigid
     from sigreport.ingest import index_study, load_stack
+    from sigreport.ingest.explain import skipped_series_summary
     from sigreport.measure import characterize, load_rules, measure_roi, noise_sigma
     from sigreport.report import write_report
     from sigreport.rois import (
@@ -237,6 +240,7 @@ def run_report(
         union_bounds,
         volume_ml,
     )
+    from sigreport.rois.masks import mask_reference_notes
 
     case = load_case(Path(case_path))
     site = site_lexicon if site_lexicon is not None else case.lexicon
@@ -256,9 +260,13 @@ def run_report(
         )
 
     _say(progress, f"indexing {study_dir}")
-    index = index_study(Path(study_dir), site_lexicon=site)
+    index = index_study(
+        Path(study_dir), site_lexicon=site, study_uid=case.study_uid, require_one_study=True
+    )
     if not index.stacks:
-        reasons = "; ".join(f"{s.path.name}: {s.reason}" for s in index.skipped[:5])
+        reasons = skipped_series_summary(index) or "; ".join(
+            f"{_relative(s.path, index.study_dir)}: {s.reason}" for s in index.skipped[:5]
+        )
         raise InputError(
             f"no usable MR series under {study_dir}" + (f" ({reasons})" if reasons else "")
         )
@@ -276,10 +284,25 @@ def run_report(
     if not measured:
         raise InputError(
             f"no series under {study_dir} has a role that can be measured (all UNKNOWN)"
+            + (
+                f"; skipped while indexing: {summary}"
+                if (summary := skipped_series_summary(index))
+                else ""
+            )
         )
 
     regions = [build_region(spec) for spec in case.rois]
-    anchor_role, anchor_reason = choose_anchor(case, measured, regions)
+    for region in regions:
+        qc.extend(
+            QcNote(QcLevel.WARNING, "mask-reference", note)
+            for note in mask_reference_notes(
+                region, index.stacks, study_uid=index.study.study_instance_uid
+            )
+        )
+    try:
+        anchor_role, anchor_reason = choose_anchor(case, measured, regions)
+    except InputError as exc:  # say why the series is not there, not only that it is not
+        raise InputError(f"{exc}{why_absent(index, case.anchor)}") from None
     anchor = measured[anchor_role]
     do_register = (
         register if register is not None else (case.register if case.register is not None else True)
@@ -288,7 +311,7 @@ def run_report(
     images: dict[Role, sitk.Image] = {}
     for role, stack in measured.items():
         _say(progress, f"loading {role.value}: {_series_name(stack)}")
-        images[role] = load_stack(stack)
+        images[role] = load_stack(stack, study_dir=index.study_dir)
 
     # The ROIs' box; register_rigid adds the lexicon's margin of anatomy around it.
     box = union_bounds(regions)
@@ -396,6 +419,13 @@ def run_report(
         force=force,
     )
     return ReportRun(out_dir=out_dir, report_html=html, findings=findings)
+
+
+def _relative(path: Path, folder: Path) -> str:
+    try:
+        return str(path.relative_to(folder))
+    except ValueError:
+        return str(path)
 
 
 def _inside(path: Path, folder: Path) -> bool:
