@@ -12,6 +12,7 @@ bomb mask, a case with 10,000 ROIs...), each with its case file, for the corpus 
 from __future__ import annotations
 
 import gzip
+import io
 import os
 import socket
 import struct
@@ -23,6 +24,7 @@ import numpy as np
 import pydicom
 import SimpleITK as sitk
 from pydicom.dataset import Dataset, FileMetaDataset
+from pydicom.filewriter import write_file_meta_info
 from pydicom.sequence import Sequence as DicomSequence
 from pydicom.uid import ExplicitVRLittleEndian, generate_uid
 
@@ -224,10 +226,10 @@ def deflate_bomb(path: Path, inflated: int = 300 * 1024**2) -> Path:
     meta.MediaStorageSOPInstanceUID = generate_uid()
     meta.TransferSyntaxUID = "1.2.840.10008.1.2.1.99"
     meta.ImplementationClassUID = generate_uid()
-    ds = Dataset()
-    ds.file_meta = meta
-    ds.preamble = b"\0" * 128
-    ds.save_as(path, enforce_file_format=True)  # preamble, DICM and the File Meta group
+    head = io.BytesIO()
+    head.write(b"\0" * 128 + b"DICM")  # preamble and prefix (PS3.10 7.1)
+    write_file_meta_info(head, meta, enforce_standard=True)
+    path.write_bytes(head.getvalue())
     packer = zlib.compressobj(9, zlib.DEFLATED, -zlib.MAX_WBITS)
     with open(path, "ab") as handle:
         # (0009,0010) OB, undefined VR length field: explicit VR, 4-byte length (PS3.5 7.1.2).
