@@ -218,3 +218,29 @@ def charset_warning(ds: Dataset) -> str | None:
         f"SpecificCharacterSet {', '.join(repr(n) for n in unknown)} is not a known character "
         "set; text was decoded with the default repertoire and may read wrong"
     )
+
+
+_UIDS = (
+    ("StudyInstanceUID", "(0020,000D)", True),
+    ("SeriesInstanceUID", "(0020,000E)", True),
+    ("SOPInstanceUID", "(0008,0018)", True),
+    ("FrameOfReferenceUID", "(0020,0052)", False),
+)
+
+
+def uid_reason(ds: Dataset) -> str | None:
+    """The identifying UIDs a report and its SR reference: present (Type 1, PS3.3 C.7.2.1,
+    C.7.3.1, C.12.1) and each one UID of digits and dots, at most 64 characters (PS3.5 9.1);
+    FrameOfReferenceUID only when present."""
+    from sigreport.ingest.header import _str
+
+    for keyword, tag, required in _UIDS:
+        value = _str(ds, keyword)
+        if value is None:
+            if required:
+                return f"missing {keyword} {tag}"
+            continue
+        if len(value) > 64 or not all(c.isdigit() or c == "." for c in value):
+            shown = value if len(value) <= 80 else value[:77] + "..."
+            return f"{keyword} {tag} is not a UID (digits and dots, at most 64): {shown!r}"
+    return None

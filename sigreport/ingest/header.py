@@ -7,6 +7,7 @@ without reading the pixels. Anything that makes a file unusable becomes a one-li
 
 from __future__ import annotations
 
+import math
 import os
 import struct
 import warnings
@@ -226,7 +227,8 @@ def _float(ds: Dataset, keyword: str) -> float | None:
 
 def _int(ds: Dataset, keyword: str) -> int | None:
     value = _float(ds, keyword)
-    return int(value) if value is not None else None
+    # NaN and infinities have no integer value (int() raises on them).
+    return int(value) if value is not None and math.isfinite(value) else None
 
 
 def _str(ds: Dataset, keyword: str) -> str | None:
@@ -255,6 +257,8 @@ def _floats(ds: Dataset, keyword: str, n: int) -> tuple[float, ...] | None:
     value = _get(ds, keyword)
     if value is None:
         return None
+    if isinstance(value, str | bytes) or not hasattr(value, "__iter__"):
+        value = [value]  # one value (a string is not a sequence of values)
     try:
         out = tuple(float(v) for v in value)
     except (TypeError, ValueError):
@@ -612,10 +616,12 @@ def read_frames(path: Path, *, fast: bool = True) -> list[FrameRecord]:
     if series_uid is None:
         raise SkipFile("missing SeriesInstanceUID (0020,000E)")
     try:
+        # Every reference to the image (the SR's evidence, key images) needs its UIDs.
+        bad = checks.uid_reason(ds)
+        if bad is not None:
+            raise SkipFile(bad)
         sop_uid = _str(ds, "SOPInstanceUID")
-        if sop_uid is None:
-            # Every reference to the image (the SR's evidence, key images) needs it.
-            raise SkipFile("missing SOPInstanceUID (0008,0018)")
+        assert sop_uid is not None
         if sop_class in MULTIFRAME_CLASSES:
             from sigreport.ingest.enhanced import enhanced_frames
 

@@ -12,7 +12,7 @@ UNVERIFIED (PS3.3 C.17.2), and it carries the report's cautions as comments.
 from __future__ import annotations
 
 import warnings
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -133,6 +133,22 @@ def _with_type2(ds: Dataset) -> Dataset:
     return ds
 
 
+def _library_images(datasets: Iterable[Dataset]) -> list[Dataset]:
+    """The sources the image library (TID 1602) can describe: highdicom reads their geometry
+    (pixel spacing, position, orientation, slice thickness) and rejects a source whose values
+    are empty or malformed; such a source is referenced by the measurements only."""
+    usable = []
+    for ds in datasets:
+        if "PixelSpacing" not in ds:
+            continue
+        try:
+            hd.sr.ImageLibraryEntryDescriptors(ds)
+        except Exception:  # noqa: BLE001 - highdicom raises several kinds on odd values
+            continue
+        usable.append(ds)
+    return usable
+
+
 class _Sources:
     """The source instances' headers (read once, without pixels) and their references."""
 
@@ -145,6 +161,10 @@ class _Sources:
                 ds = dcmread(ref.path, stop_before_pixels=True)
             except Exception as exc:  # noqa: BLE001 - re-raised with the file named
                 raise ValueError(f"cannot read source image header {ref.path}: {exc}") from exc
+            # The SOP identifiers as the index read them (an empty SOPClassUID falls back to the
+            # File Meta's MediaStorageSOPClassUID there, PS3.10 7.1).
+            ds.SOPClassUID = ref.sop_class_uid
+            ds.SOPInstanceUID = ref.sop_instance_uid
             self.datasets[ref.sop_instance_uid] = _with_type2(ds)
         return self.datasets[ref.sop_instance_uid]
 
@@ -214,7 +234,7 @@ def build_sr(
         # Enhanced MR multi-frame file keeps that in functional groups, which highdicom's
         # library entry does not read, so multi-frame sources are referenced by the
         # measurements only.
-        referenced_images=[ds for ds in sources.datasets.values() if "PixelSpacing" in ds] or None,
+        referenced_images=_library_images(sources.datasets.values()) or None,
     )
     # The cautions (and the warnings of the run) travel with the numbers: TEXT comments on the
     # report's root container (TID 1500 is extensible).
