@@ -44,11 +44,12 @@ def deadline(seconds: int) -> Iterator[None]:
         raise TimeoutError(f"blocked for more than {seconds} s")
 
     previous = signal.signal(signal.SIGALRM, expire)
-    signal.alarm(seconds)
+    # Re-fired every second: code that swallows the first TimeoutError gets another.
+    signal.setitimer(signal.ITIMER_REAL, seconds, 1.0)
     try:
         yield
     finally:
-        signal.alarm(0)
+        signal.setitimer(signal.ITIMER_REAL, 0)
         signal.signal(signal.SIGALRM, previous)
 
 
