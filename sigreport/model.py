@@ -296,8 +296,14 @@ class Stack:
 
 @dataclass(frozen=True)
 class SkippedFile:
+    """A file (or an unreadable folder) the index left out, and why; the series it belongs to
+    when its header was read far enough to tell."""
+
     path: Path
     reason: str
+    series_number: int | None = None
+    series_instance_uid: str | None = None
+    description: str | None = None
 
 
 @dataclass(frozen=True)
@@ -367,6 +373,7 @@ AUTO_REFERENCE = "auto"
 class Case:
     path: Path
     study: Path | None  # absolute, when the case file names one
+    study_uid: str | None = None  # the StudyInstanceUID to read when the folder holds several
     roles: dict[Role, int | str] = field(default_factory=dict)
     register: bool | None = None
     anchor: str | None = None  # a role name or a series number / UID as text

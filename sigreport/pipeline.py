@@ -31,6 +31,7 @@ import SimpleITK as sitk
 from sigreport.align import identity_alignment, register_rigid, register_series
 from sigreport.errors import InputError
 from sigreport.ingest import index_study, load_stack
+from sigreport.ingest.explain import skipped_series_summary, why_absent
 from sigreport.lexicon_tables import Lexicon, load_lexicon
 from sigreport.measure import Characterization, characterize, measure_roi, noise_sigma
 from sigreport.measure.change import interval_change, with_interval_change
@@ -75,6 +76,7 @@ from sigreport.rois import (
     volume_ml,
 )
 from sigreport.rois.forms import PlacedRois, place_roi_forms, provisional_regions
+from sigreport.rois.masks import mask_reference_notes
 from sigreport.rois.settings import load_roi_settings
 from sigreport.rois.space import Region
 from sigreport.rois.viewer import resolve_viewer_positions
@@ -138,7 +140,10 @@ def apply_role_overrides(
         ]
         if not matches:
             what = f"series number {target}" if isinstance(target, int) else f"series {target}"
-            problems.append(f"[roles] {role.value} = {target!r}: no {what} in the study")
+            problems.append(
+                f"[roles] {role.value} = {target!r}: no {what} in the study"
+                + why_absent(index, target)
+            )
             continue
         # A split series: the finest of its stacks carries the role.
         best = min(matches, key=lambda i: stacks[i].voxel_volume_mm3)
@@ -479,12 +484,19 @@ def plan_report(
     if study_index is None:
         say(progress, f"indexing {study_dir}")
         index = index_study(
-            Path(study_dir), progress=progress, bands=lexicon.role_bands, use_cache=use_cache
+            Path(study_dir),
+            progress=progress,
+            bands=lexicon.role_bands,
+            use_cache=use_cache,
+            study_uid=case.study_uid,
+            require_one_study=True,
         )
     else:
         index = study_index
     if not index.stacks:
-        reasons = "; ".join(f"{s.path.name}: {s.reason}" for s in index.skipped[:5])
+        reasons = skipped_series_summary(index) or "; ".join(
+            f"{_relative(s.path, index.study_dir)}: {s.reason}" for s in index.skipped[:5]
+        )
         raise InputError(
             f"no usable MR series under {study_dir}" + (f" ({reasons})" if reasons else "")
         )
@@ -506,6 +518,11 @@ def plan_report(
     if not measured:
         raise InputError(
             f"no series under {study_dir} has a role that can be measured (all UNKNOWN)"
+            + (
+                f"; skipped while indexing: {summary}"
+                if (summary := skipped_series_summary(index))
+                else ""
+            )
         )
     # ROI forms (docs/rois.md): `at` read on its own series; a seed stands in as its sphere.
     roi_settings = load_roi_settings(lexicon.site)
@@ -513,7 +530,17 @@ def plan_report(
     regions_list, roi_notes = provisional_regions(case, roi_settings, index)
     qc.extend(roi_notes)
     regions = tuple(regions_list)
-    anchor_role, anchor_reason = choose_anchor(case, measured, regions)
+    for region in regions:
+        qc.extend(
+            QcNote(QcLevel.WARNING, "mask-reference", note)
+            for note in mask_reference_notes(
+                region, index.stacks, study_uid=index.study.study_instance_uid
+            )
+        )
+    try:
+        anchor_role, anchor_reason = choose_anchor(case, measured, regions)
+    except InputError as exc:  # say why the series is not there, not only that it is not
+        raise InputError(f"{exc}{why_absent(index, case.anchor)}") from None
     check_roi_extent(regions, measured[anchor_role], measured, case_name=case.path.name)
     do_register = (
         register if register is not None else (case.register if case.register is not None else True)
@@ -552,7 +579,7 @@ def load_series(plan: ReportPlan, *, progress: Progress | None = None) -> dict[R
     total = len(plan.measured)
     for done, (role, stack) in enumerate(plan.measured.items()):
         say(progress, f"loading {role.value}: {_series_name(stack)}", done, total)
-        images[role] = load_stack(stack)
+        images[role] = load_stack(stack, study_dir=plan.index.study_dir)
     return images
 
 
@@ -568,7 +595,7 @@ def load_phases(plan: ReportPlan, *, progress: Progress | None = None) -> dict[s
             done,
             len(extra),
         )
-        images[stack.key] = load_stack(stack)
+        images[stack.key] = load_stack(stack, study_dir=plan.index.study_dir)
     return images
 
 
@@ -998,6 +1025,13 @@ def run_report(
     return ReportRun(out_dir=out_dir, report_html=html, findings=findings)
 
 
+def _relative(path: Path, folder: Path) -> str:
+    try:
+        return str(path.relative_to(folder))
+    except ValueError:
+        return str(path)
+
+
 def _with_prior(
     findings: dict[str, Any],
     case: Case,
@@ -1048,7 +1082,7 @@ def _alignments_by_key(
         by_key[key] = (
             register_rigid(
                 anchor_image,
-                load_stack(stack),
+                load_stack(stack, study_dir=plan.index.study_dir),
                 box_mm=union_bounds(plan.regions),
                 settings=plan.lexicon.alignment,
             )

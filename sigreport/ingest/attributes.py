@@ -9,6 +9,7 @@ ingest module, so the readers above can import each other's public functions fre
 
 from __future__ import annotations
 
+import math
 import struct
 from dataclasses import dataclass
 from functools import cache
@@ -37,7 +38,21 @@ IMAGE_CLASSES = (MR_IMAGE, *MULTIFRAME_CLASSES, *SECONDARY_CAPTURE)
 
 
 class SkipFile(Exception):
-    """Raised inside the reader with the one-line reason the file is skipped."""
+    """Raised inside the reader with the one-line reason the file is skipped; the series it
+    belongs to, when the header got that far (so messages can say "series 1 was skipped")."""
+
+    def __init__(
+        self,
+        reason: str,
+        *,
+        series_number: int | None = None,
+        series_instance_uid: str | None = None,
+        description: str | None = None,
+    ) -> None:
+        super().__init__(reason)
+        self.series_number = series_number
+        self.series_instance_uid = series_instance_uid
+        self.description = description
 
 
 @dataclass(frozen=True)
@@ -175,7 +190,8 @@ def _float(ds: Dataset, keyword: str) -> float | None:
 
 def _int(ds: Dataset, keyword: str) -> int | None:
     value = _float(ds, keyword)
-    return int(value) if value is not None else None
+    # NaN and infinities have no integer value (int() raises on them).
+    return int(value) if value is not None and math.isfinite(value) else None
 
 
 def _str(ds: Dataset, keyword: str) -> str | None:
@@ -204,6 +220,8 @@ def _floats(ds: Dataset, keyword: str, n: int) -> tuple[float, ...] | None:
     value = _get(ds, keyword)
     if value is None:
         return None
+    if isinstance(value, str | bytes) or not hasattr(value, "__iter__"):
+        value = [value]  # one value (a string is not a sequence of values)
     try:
         out = tuple(float(v) for v in value)
     except (TypeError, ValueError):

@@ -29,7 +29,7 @@ from pathlib import Path
 from typing import Any
 
 from sigreport import __version__
-from sigreport.ingest.header import FrameRecord, SkipFile
+from sigreport.ingest.attributes import FrameRecord, SkipFile
 
 __all__ = ["HeaderCache", "cache_dir", "CACHE_ENV"]
 

@@ -18,6 +18,7 @@ from typing import Any
 
 from pydicom.dataset import Dataset
 
+from sigreport.ingest import checks
 from sigreport.ingest.attributes import (
     FrameRecord,
     Scaling,
@@ -267,7 +268,22 @@ def enhanced_frames(
         if missing:
             raise SkipFile(f"frame {i + 1} without geometry: missing {', '.join(missing)}")
         assert position is not None and orientation is not None and spacing is not None
+        assert pm_item is not None
+        bad = checks.geometry_reason(
+            position=position,
+            orientation=orientation,
+            spacing=spacing,
+            slice_thickness=_float(pm_item, "SliceThickness"),
+            spacing_between_slices=_float(pm_item, "SpacingBetweenSlices"),
+            where=f"frame {i + 1}: ",
+        )
+        if bad is not None:
+            raise SkipFile(bad)
         check_orientation(orientation)
+        scaling = frame_scaling(groups, i, ds)
+        bad = checks.scaling_reason(scaling.slope, scaling.intercept, scaling.lut)
+        if bad is not None:
+            raise SkipFile(f"frame {i + 1}: {bad}")
         content = groups.item(i, "FrameContentSequence") or Dataset()
         records.append(
             FrameRecord(
@@ -281,7 +297,7 @@ def enhanced_frames(
                 orientation=orientation,  # type: ignore[arg-type]
                 pixel_spacing=spacing,  # type: ignore[arg-type]
                 acquisition=frame_acquisition(ds, groups, i),
-                scaling=frame_scaling(groups, i, ds),
+                scaling=scaling,
                 stack_id=_str(content, "StackID"),
                 in_stack_position=_int(content, "InStackPositionNumber"),
                 spacing_between_slices=(

@@ -10,6 +10,7 @@ from __future__ import annotations
 import os
 import struct
 import warnings
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
@@ -18,6 +19,9 @@ from pydicom.datadict import tag_for_keyword
 from pydicom.dataset import Dataset
 from pydicom.errors import InvalidDicomError
 from pydicom.uid import UID, DeflatedExplicitVRLittleEndian
+
+from sigreport import limits
+from sigreport.ingest import checks
 
 # The value helpers and record types live in ``attributes`` (shared with ``enhanced``); the
 # public ones are re-exported here (``__all__``) for the modules that read a header through us.
@@ -128,17 +132,17 @@ def _pixel_element_status(fp: Any, ds: Dataset, file_size: int) -> str | None:
         else:
             (length,) = struct.unpack(fmt + "H", header[6:8])
             header_len = 8
+    available = file_size - start - header_len
     if length == 0xFFFFFFFF:
         # Encapsulated: at least the Basic Offset Table item and one fragment must follow.
-        if file_size - start - header_len < 16:
+        if available < 16:
             return "truncated: encapsulated pixel data has no fragments"
-        return None
-    available = file_size - start - header_len
+        return checks.pixel_budget_reason(ds, declared_length=None, available=available)
     if available < length:
         return f"truncated: pixel data declares {length} bytes, file holds {max(available, 0)}"
     if length == 0:
         return "no pixel data (empty Pixel Data element)"
-    return None
+    return checks.pixel_budget_reason(ds, declared_length=length, available=available)
 
 
 def read_dataset(path: Path, *, fast: bool = True) -> tuple[Dataset, str | None]:
@@ -151,13 +155,27 @@ def read_dataset(path: Path, *, fast: bool = True) -> tuple[Dataset, str | None]
     when ``fast`` is False, is read by ``pydicom.dcmread``.
     """
     try:
-        fp = open(path, "rb")  # noqa: SIM115 - closed below
-        file_size = os.fstat(fp.fileno()).st_size
+        # The type first: a FIFO or a device is never opened (it could block or never end).
+        kind = checks.file_kind_reason(os.stat(path).st_mode)
+        if kind is not None:
+            raise SkipFile(kind)
+        fp = open(path, "rb", opener=checks.nonblocking_opener)  # noqa: SIM115 - closed below
+        info = os.fstat(fp.fileno())
     except PermissionError:
         raise SkipFile("unreadable: permission denied") from None
     except OSError as exc:
         raise SkipFile(f"unreadable: {exc.strerror or exc}") from None
+    file_size = info.st_size
+    kind = checks.file_kind_reason(info.st_mode)  # replaced between stat and open
+    if kind is not None:
+        fp.close()
+        raise SkipFile(kind)
     with fp, warnings.catch_warnings():
+        # The preamble and prefix (or a plausible data set start) before reading on.
+        prefix = checks.prefix_reason(fp.read(132))
+        if prefix is not None:
+            raise SkipFile(prefix)
+        fp.seek(0)
         # pydicom warns about recoverable header oddities; the scan reports only what matters.
         warnings.simplefilter("ignore")
         if fast:
@@ -188,13 +206,54 @@ def _read_with_pydicom(fp: Any, path: Path, file_size: int) -> tuple[Dataset, st
         raise SkipFile(f"not readable as DICOM: {type(exc).__name__}: {exc}") from None
     ts = getattr(getattr(ds, "file_meta", None), "TransferSyntaxUID", None)
     if ts == DeflatedExplicitVRLittleEndian:
-        # The handle points into the deflated stream: read the whole file instead.
+        # The handle points into the deflated stream: read the whole file instead, once its
+        # inflated size is known to be bounded.
+        fp.seek(0)
+        inflated = _inflated_size(fp, limits.MAX_DEFLATED_BYTES)
+        if inflated is None:
+            raise SkipFile(
+                "deflated data set inflates beyond the ceiling of "
+                f"{limits.MAX_DEFLATED_BYTES} bytes (sigreport.limits)"
+            )
         return _read_full_check(path)
     try:
         status = _pixel_element_status(fp, ds, file_size)
     except (struct.error, OSError):
         status = "truncated: the pixel data element header is incomplete"
     return ds, status
+
+
+def _inflated_size(fp: Any, cap: int) -> int | None:
+    """Bytes of a deflated file's data set once inflated (PS3.5 A.5: a raw deflate stream
+    after the File Meta group), counted by inflating 1 MiB at a time and discarding; None as
+    soon as the count passes ``cap``. A corrupt stream is left to pydicom's reader to report."""
+    import zlib
+
+    data = fp.read()
+    inflater = zlib.decompressobj(-zlib.MAX_WBITS)
+    total = 0
+    pending: bytes = data[_meta_end(data) :]
+    try:
+        while pending and not inflater.eof:
+            total += len(inflater.decompress(pending, 1 << 20))
+            if total > cap:
+                return None
+            pending = inflater.unconsumed_tail
+    except zlib.error:
+        return total
+    return total
+
+
+def _meta_end(data: bytes) -> int:
+    """Offset just past the File Meta group (0002) of a Part 10 file (PS3.10 7.1)."""
+    pos = 132
+    while pos + 8 <= len(data) and data[pos : pos + 2] == b"\x02\x00":
+        vr = data[pos + 4 : pos + 6]
+        if vr in (b"OB", b"OW", b"OF", b"SQ", b"UT", b"UN", b"UC", b"UR", b"OD", b"OL", b"OV"):
+            pos += 12 + struct.unpack_from("<I", data, pos + 8)[0]
+        else:
+            pos += 8 + struct.unpack_from("<H", data, pos + 6)[0]
+    return pos
 
 
 def _multiframe(ds: Dataset) -> bool:
@@ -231,7 +290,12 @@ def _read_full_check(path: Path) -> tuple[Dataset, str | None]:
         raise SkipFile(f"truncated or corrupt deflated file: {exc}") from None
     if "PixelData" not in ds and "FloatPixelData" not in ds and "DoubleFloatPixelData" not in ds:
         return ds, "no pixel data"
-    return ds, None
+    element = ds["PixelData"] if "PixelData" in ds else None
+    encapsulated = element is not None and element.is_undefined_length
+    length = len(element.value) if element is not None and element.value is not None else 0
+    return ds, checks.pixel_budget_reason(
+        ds, declared_length=None if encapsulated else length, available=length
+    )
 
 
 def read_frames(path: Path, *, fast: bool = True) -> list[FrameRecord]:
@@ -273,13 +337,31 @@ def frames_from_dataset(path: Path, ds: Dataset, status: str | None = None) -> l
     series_uid = _str(ds, "SeriesInstanceUID")
     if series_uid is None:
         raise SkipFile("missing SeriesInstanceUID (0020,000E)")
-    sop_uid = _str(ds, "SOPInstanceUID") or f"file:{path}"
-    if sop_class in MULTIFRAME_CLASSES:
-        return enhanced_frames(path, ds, sop_uid, sop_class, series_uid)
-    record = with_csa_diffusion(classic_frame(path, ds, sop_uid, sop_class, series_uid), ds)
-    if is_mosaic(record.acquisition.image_type):
-        return mosaic_frames(record, ds)
-    return [record]
+    try:
+        # Every reference to the image (the SR's evidence, key images) needs its UIDs.
+        bad = checks.uid_reason(ds)
+        if bad is not None:
+            raise SkipFile(bad)
+        sop_uid = _str(ds, "SOPInstanceUID")
+        assert sop_uid is not None
+        if sop_class in MULTIFRAME_CLASSES:
+            records = enhanced_frames(path, ds, sop_uid, sop_class, series_uid)
+        else:
+            record = with_csa_diffusion(classic_frame(path, ds, sop_uid, sop_class, series_uid), ds)
+            records = (
+                mosaic_frames(record, ds) if is_mosaic(record.acquisition.image_type) else [record]
+            )
+        charset = checks.charset_warning(ds)
+        if charset is not None:
+            records = [replace(r, warnings=(*r.warnings, charset)) for r in records]
+        return records
+    except SkipFile as exc:
+        raise SkipFile(
+            str(exc),
+            series_number=_int(ds, "SeriesNumber"),
+            series_instance_uid=series_uid,
+            description=_str(ds, "SeriesDescription"),
+        ) from None
 
 
 def _image_size(ds: Dataset) -> tuple[int, int]:
@@ -309,9 +391,22 @@ def classic_frame(
         ]
         what = "screen capture" if sop_class in SECONDARY_CAPTURE else "image"
         raise SkipFile(f"{what} without geometry: missing or malformed {', '.join(missing)}")
+    bad = checks.geometry_reason(
+        position=position,
+        orientation=orientation,
+        spacing=spacing,
+        slice_thickness=_float(ds, "SliceThickness"),
+        spacing_between_slices=_float(ds, "SpacingBetweenSlices"),
+    )
+    if bad is not None:
+        raise SkipFile(bad)
     check_orientation(orientation)
     if spacing[0] <= 0 or spacing[1] <= 0:
         raise SkipFile(f"PixelSpacing (0028,0030) must be positive, got {list(spacing)}")
+    scaling = classic_scaling(ds)
+    bad = checks.scaling_reason(scaling.slope, scaling.intercept, scaling.lut)
+    if bad is not None:
+        raise SkipFile(bad)
     return FrameRecord(
         path=path,
         frame=None,
@@ -323,7 +418,7 @@ def classic_frame(
         orientation=orientation,  # type: ignore[arg-type]
         pixel_spacing=spacing,  # type: ignore[arg-type]
         acquisition=classic_acquisition(ds),
-        scaling=classic_scaling(ds),
+        scaling=scaling,
         spacing_between_slices=_float(ds, "SpacingBetweenSlices"),
         **common_fields(ds, series_uid),
     )

@@ -12,6 +12,7 @@ from sigreport.ingest.attributes import FrameRecord, SkipFile
 from sigreport.ingest.cache import HeaderCache
 from sigreport.ingest.dynamic import assign_dynamic_phases
 from sigreport.ingest.header import read_frames
+from sigreport.ingest.identity import screen_duplicates, screen_series, select_study
 from sigreport.ingest.roles import (
     RoleBands,
     _infer,
@@ -22,12 +23,25 @@ from sigreport.ingest.stacks import build_stacks
 from sigreport.model import Progress, SkippedFile, StudyIndex, StudyInfo
 
 
-def _files(study_dir: Path) -> list[Path]:
+def _files(study_dir: Path) -> tuple[list[Path], list[SkippedFile]]:
+    """Every entry under ``study_dir`` that is not a folder, and the folders that could not be
+    listed (os.walk reports them to ``onerror``; by default it drops them silently)."""
     found: list[Path] = []
-    for root, dirs, names in os.walk(study_dir):
+    unreadable: list[SkippedFile] = []
+
+    def refused(exc: OSError) -> None:
+        reason = exc.strerror or type(exc).__name__
+        unreadable.append(
+            SkippedFile(
+                path=Path(exc.filename) if exc.filename else study_dir,
+                reason=f"folder not readable ({reason}): the files in it were not indexed",
+            )
+        )
+
+    for root, dirs, names in os.walk(study_dir, onerror=refused):
         dirs.sort()
         found.extend(Path(root) / name for name in sorted(names))
-    return found
+    return found, unreadable
 
 
 def index_study(
@@ -38,6 +52,8 @@ def index_study(
     bands: RoleBands | None = None,
     use_cache: bool = True,
     cache_dir: Path | None = None,
+    study_uid: str | None = None,
+    require_one_study: bool = False,
 ) -> StudyIndex:
     """Index every DICOM file under ``study_dir`` (recursively, any file names).
 
@@ -61,11 +77,14 @@ def index_study(
         Reuse (and update) the header index cache of this folder (``sigreport.ingest.cache``:
         files whose size and modification time are unchanged are not read again); the cache
         folder defaults to the user's cache directory.
+    study_uid, require_one_study
+        As :func:`index_records`.
 
     Raises
     ------
     InputError
-        When ``study_dir`` does not exist or is not a folder, or the roles lexicon is invalid.
+        When ``study_dir`` does not exist or is not a folder, the roles lexicon is invalid, or
+        ``require_one_study`` and the folder holds several studies or patients.
     """
     study_dir = Path(study_dir)
     if not study_dir.exists():
@@ -74,22 +93,36 @@ def index_study(
         raise InputError(f"study folder {study_dir} is not a folder")
     if bands is None:
         bands = load_role_bands(site_lexicon)
-    files = _files(study_dir)
+    files, skipped = _files(study_dir)
     records: list[FrameRecord] = []
-    skipped: list[SkippedFile] = []
     total = len(files)
     cache = HeaderCache(study_dir, directory=cache_dir, enabled=use_cache)
     for done, path in enumerate(files, start=1):
         try:
             records.extend(cache.read_frames(path, read_frames))
         except SkipFile as exc:
-            skipped.append(SkippedFile(path=path, reason=str(exc)))
+            skipped.append(
+                SkippedFile(
+                    path=path,
+                    reason=str(exc),
+                    series_number=exc.series_number,
+                    series_instance_uid=exc.series_instance_uid,
+                    description=exc.description,
+                )
+            )
         except RecursionError:
             skipped.append(SkippedFile(path=path, reason="not readable: nesting too deep"))
         if progress is not None:
             progress("indexing files", done, total)
     cache.save()
-    return index_records(study_dir, records, skipped, bands=bands)
+    return index_records(
+        study_dir,
+        records,
+        skipped,
+        bands=bands,
+        study_uid=study_uid,
+        require_one_study=require_one_study,
+    )
 
 
 def index_records(
@@ -99,27 +132,49 @@ def index_records(
     *,
     bands: RoleBands | None = None,
     site_lexicon: Path | None = None,
+    study_uid: str | None = None,
+    require_one_study: bool = False,
 ) -> StudyIndex:
     """The study index of frame records read elsewhere (``index_study`` reads them from files,
     ``sigreport.archive`` from an archive's metadata): stacks, each stack's role, study details.
 
-    ``bands`` are the role bands (default: loaded from ``site_lexicon`` or the bundled lexicon).
+    Files of a series whose study, patient or frame of reference differ from the rest of the
+    series, and files that share a SOPInstanceUID with different content, are left out and
+    listed as skipped (``sigreport.ingest.identity``).
+
+    Parameters
+    ----------
+    bands
+        The role bands (default: loaded from ``site_lexicon`` or the bundled lexicon).
+    study_uid
+        Keep only this StudyInstanceUID (the case file's ``study_uid``); other studies' files
+        are listed as skipped.
+    require_one_study
+        Raise ``InputError`` when the records (after ``study_uid``) hold more than one study or
+        patient; without it these are ``StudyIndex.warnings``.
     """
     if bands is None:
         bands = load_role_bands(site_lexicon)
+    skipped = list(skipped)
+    # A stray file inside a series first (it is named precisely), then the folder's studies.
+    records, other = screen_series(records)
+    skipped.extend(other)
+    records, other, warnings = select_study(
+        records, study_uid=study_uid, require_one=require_one_study, where=str(study_dir)
+    )
+    skipped.extend(other)
+    records, other = screen_duplicates(records, study_dir=study_dir)
+    skipped.extend(other)
+    # One entry per file and reason (a multi-frame or mosaic file holds several records).
+    skipped = list({(s.path, s.reason): s for s in skipped}.values())
+
     stacks = []
     for stack in build_stacks(records):
         role, reason, confidence = _infer(stack.acquisition, stack.description, bands)
         stacks.append(replace(stack, role=role, role_reason=reason, confidence=confidence))
     stacks = assign_dynamic_phases(refine_roles_across_stacks(stacks, bands))
 
-    warnings: list[str] = []
     study_uids = Counter(r.study.study_instance_uid for r in records)
-    if len(study_uids) > 1:
-        warnings.append(
-            f"{len(study_uids)} StudyInstanceUIDs in the folder; study details are from the most "
-            "common one"
-        )
     study = StudyInfo()
     if records:
         main_uid = study_uids.most_common(1)[0][0]

@@ -18,6 +18,7 @@ import SimpleITK as sitk
 from pydicom.datadict import tag_for_keyword
 from pydicom.dataset import Dataset
 
+from sigreport import limits
 from sigreport.errors import InputError
 from sigreport.ingest.attributes import (
     MULTIFRAME_CLASSES,
@@ -123,26 +124,43 @@ def read_native_frame(path: Path) -> tuple[Dataset, np.ndarray] | None:
     return ds, pixels
 
 
-def _read(path: Path) -> Dataset:
+def _where(stack: Stack, path: Path, study_dir: Path | None) -> str:
+    """``series 3 (T2 TSE), file s3/IM0001``: the series and the file relative to the study
+    folder (a bare file name such as IM0001 exists in every series folder)."""
+    shown: Path | str = path
+    if study_dir is not None:
+        try:
+            shown = path.relative_to(study_dir)
+        except ValueError:
+            shown = path
+    series = f"series {stack.series_number}" if stack.series_number is not None else "series"
+    if stack.description:
+        series += f" ({stack.description})"
+    if stack.stack:
+        series += f" stack {stack.stack}"
+    return f"{series}, file {shown}"
+
+
+def _read(path: Path, where: str) -> Dataset:
     try:
         return pydicom.dcmread(path, specific_tags=_LOAD_TAGS)
     except Exception as exc:  # the file changed or broke since it was indexed
-        raise InputError(f"{path.name}: cannot be read: {exc}") from None
+        raise InputError(f"{where}: cannot be read: {exc}") from None
 
 
-def _pixels(ds: Dataset, path: Path) -> np.ndarray:
+def _pixels(ds: Dataset, where: str) -> np.ndarray:
     try:
         with warnings.catch_warnings():
             # pydicom warns about recoverable oddities (e.g. excess padding it removes).
             warnings.simplefilter("ignore")
             return np.asarray(ds.pixel_array)
-    except Exception as exc:  # no decoder, corrupt stream, wrong lengths
+    except Exception as exc:  # no decoder, corrupt stream, wrong lengths, out of memory
         ts = getattr(getattr(ds, "file_meta", None), "TransferSyntaxUID", None)
         name = ts.name if ts is not None else "unknown transfer syntax"
-        raise InputError(f"{path.name}: pixel data cannot be decoded ({name}): {exc}") from None
+        raise InputError(f"{where}: pixel data cannot be decoded ({name}): {exc}") from None
 
 
-def load_stack(stack: Stack) -> sitk.Image:
+def load_stack(stack: Stack, *, study_dir: Path | None = None) -> sitk.Image:
     """Load a stack's pixels as a float32 SimpleITK image in patient space (LPS).
 
     Values are rescaled: a Real World Value Mapping when present, else RescaleSlope/Intercept
@@ -152,12 +170,28 @@ def load_stack(stack: Stack) -> sitk.Image:
     so voxel (i, j, k) lies at origin + D @ (i sx, j sy, k sz) (DICOM PS3.3 C.7.6.2.1.1).
     Slices missing from a regular stack (see ``Stack.warnings``) are NaN.
 
+    Parameters
+    ----------
+    stack
+        A stack of ``index_study``.
+    study_dir
+        The study folder: error messages name files relative to it.
+
     Raises
     ------
     InputError
-        Naming the file when pixel data cannot be read or decoded, or its size does not match.
+        Naming the series and the file when pixel data cannot be read or decoded, or its size
+        does not match; or when the stack's voxels exceed ``limits.MAX_STACK_VOXELS`` (checked
+        before anything is allocated).
     """
     columns, rows, n_slices = stack.size
+    voxels = int(columns) * int(rows) * int(n_slices)
+    if voxels > limits.MAX_STACK_VOXELS:
+        raise InputError(
+            f"{_where(stack, stack.instances[0].path, study_dir)}: the stack is {columns} x "
+            f"{rows} x {n_slices} voxels, above the ceiling of {limits.MAX_STACK_VOXELS} "
+            "(sigreport.limits)"
+        )
     volume = np.full((n_slices, rows, columns), np.nan, dtype=np.float32)
     indices = _slice_indices(stack)
 
@@ -169,18 +203,21 @@ def load_stack(stack: Stack) -> sitk.Image:
         else:
             by_file[ref.path].append((k, ref.frame))
     for path, tile_targets in tiles.items():
-        _load_mosaic_tiles(volume, path, tile_targets, rows, columns)
+        _load_mosaic_tiles(
+            volume, path, tile_targets, rows, columns, _where(stack, path, study_dir)
+        )
     for path, targets in by_file.items():
+        where = _where(stack, path, study_dir)
         if all(f is None for _, f in targets):
             native = read_native_frame(path)
             if native is not None:
                 ds, pixels = native
                 scaling = classic_scaling(ds)
                 for k, _ in targets:
-                    volume[k] = _apply(_check(pixels, rows, columns, path), scaling)
+                    volume[k] = _apply(_check(pixels, rows, columns, where), scaling)
                 continue
-        ds = _read(path)
-        pixels = _pixels(ds, path)
+        ds = _read(path, where)
+        pixels = _pixels(ds, where)
         if str(ds.get("SOPClassUID", "")) in MULTIFRAME_CLASSES or any(
             f is not None for _, f in targets
         ):
@@ -190,19 +227,19 @@ def load_stack(stack: Stack) -> sitk.Image:
                 index = (frame or 1) - 1
                 if index >= frames.shape[0]:
                     raise InputError(
-                        f"{path.name}: frame {index + 1} requested, file has {frames.shape[0]}"
+                        f"{where}: frame {index + 1} requested, file has {frames.shape[0]}"
                     )
                 volume[k] = _apply(
-                    _check(frames[index], rows, columns, path), frame_scaling(groups, index, ds)
+                    _check(frames[index], rows, columns, where), frame_scaling(groups, index, ds)
                 )
         else:
             scaling = classic_scaling(ds)
             if pixels.ndim != 2:
                 raise InputError(
-                    f"{path.name}: expected one {rows}x{columns} frame, got shape {pixels.shape}"
+                    f"{where}: expected one {rows}x{columns} frame, got shape {pixels.shape}"
                 )
             for k, _ in targets:
-                volume[k] = _apply(_check(pixels, rows, columns, path), scaling)
+                volume[k] = _apply(_check(pixels, rows, columns, where), scaling)
 
     image = sitk.GetImageFromArray(volume, isVector=False)
     image.SetOrigin(stack.origin_mm)
@@ -212,7 +249,12 @@ def load_stack(stack: Stack) -> sitk.Image:
 
 
 def _load_mosaic_tiles(
-    volume: np.ndarray, path: Path, targets: list[tuple[int, int]], rows: int, columns: int
+    volume: np.ndarray,
+    path: Path,
+    targets: list[tuple[int, int]],
+    rows: int,
+    columns: int,
+    where: str,
 ) -> None:
     """Fill ``volume[k]`` with tile ``tile`` of the mosaic in ``path`` for each (k, tile),
     rescaled like any classic image (ingest/mosaic.py describes the tile layout)."""
@@ -220,21 +262,21 @@ def _load_mosaic_tiles(
     if native is not None:
         ds, pixels = native
     else:
-        ds = _read(path)
-        pixels = _pixels(ds, path)
+        ds = _read(path, where)
+        pixels = _pixels(ds, where)
     scaling = classic_scaling(ds)
     for k, tile in targets:
         try:
             part = cut_tile(pixels, tile, rows, columns)
         except ValueError as exc:
-            raise InputError(f"{path.name}: {exc}") from None
+            raise InputError(f"{where}: {exc}") from None
         volume[k] = _apply(part, scaling)
 
 
-def _check(frame: np.ndarray, rows: int, columns: int, path: Path) -> np.ndarray:
+def _check(frame: np.ndarray, rows: int, columns: int, where: str) -> np.ndarray:
     if frame.shape != (rows, columns):
         raise InputError(
-            f"{path.name}: frame is {frame.shape[0]}x{frame.shape[1]}, the stack expects "
+            f"{where}: frame is {frame.shape[0]}x{frame.shape[1]}, the stack expects "
             f"{rows}x{columns}"
         )
     return frame

@@ -11,12 +11,14 @@ UNVERIFIED (PS3.3 C.17.2), and it carries the report's cautions as comments.
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+import warnings
+from collections.abc import Iterable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
 import highdicom as hd
 from pydicom import Dataset, dcmread
+from pydicom.charset import python_encoding
 from pydicom.sr.codedict import codes
 from pydicom.sr.coding import Code
 
@@ -132,6 +134,47 @@ def _instance_for(key: KeySlice, stack: Stack) -> InstanceRef | None:
     return None
 
 
+# Patient (PS3.3 C.7.1.1) and General Study (C.7.2.1) attributes of Type 2, which the SR
+# copies from its evidence: a source that omits one has it empty, as Type 2 allows.
+_TYPE2_COPIED = (
+    "PatientName", "PatientID", "PatientBirthDate", "PatientSex", "StudyDate", "StudyTime",
+    "ReferringPhysicianName", "StudyID", "AccessionNumber",
+)  # fmt: skip
+
+
+def _with_type2(ds: Dataset) -> Dataset:
+    """The source header as the SR can copy it: Type 2 attributes present (empty when the
+    source omits them), and text in UTF-8 when the source names a character set pydicom does
+    not know (its text was decoded with pydicom's fallback, and the scan said so)."""
+    for keyword in _TYPE2_COPIED:
+        if keyword not in ds:
+            setattr(ds, keyword, None)
+    declared = ds.get("SpecificCharacterSet")
+    names = [declared] if isinstance(declared, str) else list(declared or [])
+    if any(name and str(name).strip() not in python_encoding for name in names):
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # pydicom warns that it falls back
+            ds.decode()
+        ds.SpecificCharacterSet = "ISO_IR 192"  # UTF-8 (PS3.3 C.12.1.1.2)
+    return ds
+
+
+def _library_images(datasets: Iterable[Dataset]) -> list[Dataset]:
+    """The sources the image library (TID 1602) can describe: highdicom reads their geometry
+    (pixel spacing, position, orientation, slice thickness) and rejects a source whose values
+    are empty or malformed; such a source is referenced by the measurements only."""
+    usable = []
+    for ds in datasets:
+        if "PixelSpacing" not in ds:
+            continue
+        try:
+            hd.sr.ImageLibraryEntryDescriptors(ds)
+        except Exception:  # noqa: BLE001 - highdicom raises several kinds on odd values
+            continue
+        usable.append(ds)
+    return usable
+
+
 class _Sources:
     """The source instances' headers (read once, without pixels) and their references."""
 
@@ -144,7 +187,11 @@ class _Sources:
                 ds = dcmread(ref.path, stop_before_pixels=True)
             except Exception as exc:  # noqa: BLE001 - re-raised with the file named
                 raise ValueError(f"cannot read source image header {ref.path}: {exc}") from exc
-            self.datasets[ref.sop_instance_uid] = ds
+            # The SOP identifiers as the index read them (an empty SOPClassUID falls back to the
+            # File Meta's MediaStorageSOPClassUID there, PS3.10 7.1).
+            ds.SOPClassUID = ref.sop_class_uid
+            ds.SOPInstanceUID = ref.sop_instance_uid
+            self.datasets[ref.sop_instance_uid] = _with_type2(ds)
         return self.datasets[ref.sop_instance_uid]
 
     @staticmethod
@@ -230,7 +277,11 @@ def build_sr(
         observation_context=context,
         procedure_reported=codes.cid100.MultiparametricMRI,
         imaging_measurements=groups,
-        referenced_images=library,
+        # The image library (TID 1600) describes each image by its top-level geometry; an
+        # Enhanced MR multi-frame file keeps that in functional groups, which highdicom's
+        # library entry does not read, so multi-frame sources are referenced by the
+        # measurements only.
+        referenced_images=_library_images(sources.datasets.values()) or None,
     )
     # The cautions (and the warnings of the run) travel with the numbers: TEXT comments on the
     # report's root container (TID 1500 is extensible).

@@ -18,12 +18,13 @@ import tomllib
 from pathlib import Path
 from typing import Any
 
+from sigreport import limits
 from sigreport.errors import InputError
 from sigreport.model import AUTO_REFERENCE, Case, RoiKind, RoiShape, RoiSpec, Role, ViewerPosition
 
 __all__ = ["load_case", "ROI_KEYS", "TOP_KEYS"]
 
-TOP_KEYS = frozenset({"study", "roles", "options", "roi", "lexicon"})
+TOP_KEYS = frozenset({"study", "study_uid", "roles", "options", "roi", "lexicon"})
 OPTION_KEYS = frozenset({"register", "anchor"})
 ROI_KEYS = frozenset(
     {
@@ -79,6 +80,12 @@ def _show(value: Any) -> str:
     return str(value)
 
 
+def _is_uid(text: str) -> bool:
+    """A UID (PS3.5 9.1): digits in dot-separated components, at most 64 characters."""
+    parts = text.split(".")
+    return 0 < len(text) <= 64 and all(p.isdigit() and p.isascii() for p in parts)
+
+
 def _choices(values: Any) -> str:
     return ", ".join(str(v) for v in values)
 
@@ -112,12 +119,27 @@ def _vector3(
     ):
         problems.add(where, f"{key} must be a list of {what} (mm), got {_show(value)}")
         return None
+    # Bounded up front: an ROI's extent sets the size of everything sampled for it.
+    ceiling = limits.MAX_ROI_EXTENT_MM if positive else limits.MAX_COORDINATE_MM
+    if not all(abs(v) <= ceiling for v in value):
+        problems.add(
+            where,
+            f"{key} must lie within {ceiling:g} mm, got {_show(value)} (sigreport.limits)",
+        )
+        return None
     return (float(value[0]), float(value[1]), float(value[2]))
 
 
 def _positive(value: Any, key: str, where: str, problems: _Problems) -> float | None:
     if not _is_number(value) or not math.isfinite(value) or value <= 0:
         problems.add(where, f"{key} must be a positive number, got {_show(value)}")
+        return None
+    if value > limits.MAX_ROI_EXTENT_MM:
+        problems.add(
+            where,
+            f"{key} must be at most {limits.MAX_ROI_EXTENT_MM:g} mm, got {_show(value)} "
+            "(sigreport.limits)",
+        )
         return None
     return float(value)
 
@@ -510,6 +532,18 @@ def load_case(path: Path) -> Case:
         else:
             study = (base / raw).resolve()
 
+    study_uid: str | None = None
+    if "study_uid" in data:
+        raw = data["study_uid"]
+        if not isinstance(raw, str) or not _is_uid(raw.strip()):
+            problems.add(
+                "",
+                "study_uid must be a StudyInstanceUID (digits and dots, at most 64 characters), "
+                f"got {_show(raw)}",
+            )
+        else:
+            study_uid = raw.strip()
+
     lexicon: Path | None = None
     if "lexicon" in data:
         raw = data["lexicon"]
@@ -533,6 +567,12 @@ def load_case(path: Path) -> Case:
     elif not isinstance(raw_rois, list):
         problems.add("", f"roi must be an array of tables ([[roi]]), got {_show(raw_rois)}")
         raw_rois = []
+    elif len(raw_rois) > limits.MAX_ROIS:
+        # Checked before any ROI is looked at: each one costs a sampled mask per series.
+        raise InputError(
+            f"{name}: {len(raw_rois)} [[roi]] tables; at most {limits.MAX_ROIS} are allowed "
+            "(sigreport.limits)"
+        )
 
     seen: dict[str, int] = {}
     for index, table in enumerate(raw_rois, start=1):
@@ -591,6 +631,7 @@ def load_case(path: Path) -> Case:
     return Case(
         path=path,
         study=study,
+        study_uid=study_uid,
         roles=roles,
         register=register,
         anchor=anchor,

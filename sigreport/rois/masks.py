@@ -17,13 +17,17 @@ Every mask becomes a physical-space region (:class:`sigreport.rois.space.Region`
 from __future__ import annotations
 
 import re
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import SimpleITK as sitk
 
+from sigreport import limits
 from sigreport.errors import InputError
+from sigreport.model import Stack
 from sigreport.rois.space import as_points
 
 __all__ = [
@@ -57,6 +61,7 @@ class GridRegion:
     source_series_uid: str | None = None
     frame_of_reference_uid: str | None = None
     source: str = ""  # the file it came from, for messages
+    study_instance_uid: str | None = None  # SEG: the study it was drawn on
 
     def _nearest(self, points_lps: np.ndarray) -> np.ndarray:
         points = as_points(points_lps)
@@ -156,6 +161,7 @@ class ContourRegion:
     source_series_uid: str | None = None
     frame_of_reference_uid: str | None = None
     source: str = ""
+    study_instance_uid: str | None = None  # the study the structure set was drawn on
     _planes: list = field(default_factory=list, repr=False)
 
     def __post_init__(self) -> None:
@@ -245,6 +251,7 @@ def load_mask_region(
             raise InputError(f"mask file {path}: not readable as DICOM: {exc}") from None
         modality = str(header.get("Modality", ""))
         if modality == "SEG":
+            _check_seg_size(header, path)
             return load_seg(path, roi_id=roi_id, segment=segment if segment is not None else label)
         if modality == "RTSTRUCT":
             return load_rtstruct(path, roi_id=roi_id, roi=segment)
@@ -262,8 +269,81 @@ def load_mask_region(
     return load_label_image(path, roi_id=roi_id, label=label)
 
 
+def _check_seg_size(header: Any, path: Path) -> None:
+    """Rows x Columns x NumberOfFrames of a SEG against ``limits.MAX_MASK_VOXELS``, before
+    highdicom decodes it (an encapsulated SEG can inflate far beyond its file)."""
+    try:
+        rows, columns = int(header.get("Rows") or 0), int(header.get("Columns") or 0)
+        frames = int(header.get("NumberOfFrames") or 1)
+    except (TypeError, ValueError):
+        raise InputError(
+            f"mask file {path}: Rows, Columns or NumberOfFrames is not a number"
+        ) from None
+    if not rows or not columns:
+        return  # highdicom's reader says what is missing
+    voxels = rows * columns * frames
+    if rows < 1 or columns < 1 or frames < 1 or voxels > limits.MAX_MASK_VOXELS:
+        raise InputError(
+            f"mask file {path}: the SEG declares {rows} x {columns} pixels x {frames} frames; "
+            f"at most {limits.MAX_MASK_VOXELS} voxels are read (sigreport.limits)"
+        )
+
+
+def _gzip_inflated_size(path: Path, cap: int) -> int | None:
+    """The inflated size of a gzip file, streamed 1 MiB at a time and discarded; None as soon
+    as it passes ``cap`` (a small file can inflate to gigabytes)."""
+    import gzip
+
+    total = 0
+    try:
+        with gzip.open(path, "rb") as stream:
+            while chunk := stream.read(1 << 20):
+                total += len(chunk)
+                if total > cap:
+                    return None
+    except (OSError, EOFError):
+        return total  # a corrupt stream: SimpleITK's reader reports it
+    return total
+
+
+def _check_label_image_size(path: Path, roi_id: str) -> None:
+    """The dimensions a label image declares (its header only, read by SimpleITK), and for a
+    gzip file (``.nii.gz``) the inflated length, against the ceilings of
+    :mod:`sigreport.limits`, before the image is read."""
+    reader = sitk.ImageFileReader()
+    reader.SetFileName(str(path))
+    try:
+        reader.ReadImageInformation()
+    except RuntimeError as exc:
+        raise InputError(
+            f"ROI {roi_id}: mask file {path} is not an image SimpleITK can read as a label "
+            f"image (NIfTI, NRRD, MHA...): {_reader_reason(exc)}"
+        ) from None
+    size = [int(v) for v in reader.GetSize()]
+    voxels = int(np.prod(size, dtype=np.float64)) * max(1, reader.GetNumberOfComponents())
+    if voxels > limits.MAX_MASK_VOXELS:
+        raise InputError(
+            f"mask file {path}: the label image declares {' x '.join(map(str, size))} voxels; "
+            f"at most {limits.MAX_MASK_VOXELS} are read (sigreport.limits)"
+        )
+    with path.open("rb") as handle:
+        gzipped = handle.read(2) == b"\x1f\x8b"  # RFC 1952 member header
+    if gzipped:
+        # The voxels it declares (8 bytes each at most) plus room for a header and extensions.
+        cap = min(limits.MAX_INFLATED_BYTES, voxels * 8 + 16 * 1024**2)
+        if _gzip_inflated_size(path, cap) is None:
+            raise InputError(
+                f"mask file {path}: the gzip stream inflates beyond {cap} bytes, more than its "
+                f"{' x '.join(map(str, size))} voxels need; refused before decompressing it"
+            )
+
+
 def load_label_image(path: Path, *, roi_id: str, label: int | None = None) -> GridRegion:
-    """A label image (NIfTI, NRRD, MHA...) read by SimpleITK, in its physical (LPS) space."""
+    """A label image (NIfTI, NRRD, MHA...) read by SimpleITK, in its physical (LPS) space.
+
+    Its declared size and (gzip) inflated length are checked first (``_check_label_image_size``).
+    """
+    _check_label_image_size(path, roi_id)
     try:
         image = sitk.ReadImage(str(path))
     except RuntimeError as exc:
@@ -337,6 +417,7 @@ def load_seg(path: Path, *, roi_id: str, segment: str | int | None = None) -> Gr
         source_series_uid=source_series,
         frame_of_reference_uid=str(seg.get("FrameOfReferenceUID", "")) or None,
         source=str(path),
+        study_instance_uid=str(seg.get("StudyInstanceUID", "")) or None,
     )
 
 
@@ -465,6 +546,7 @@ def load_rtstruct(
         source_series_uid=series,
         frame_of_reference_uid=frame,
         source=str(path),
+        study_instance_uid=str(ds.get("StudyInstanceUID", "")) or None,
     )
 
 
@@ -507,3 +589,43 @@ def _reader_reason(exc: Exception) -> str:
         text = text.split("sitk::ERROR:", 1)[1].strip()
     text = re.sub(r"\S+\.(cxx|cpp|hxx|h|txx)(:\d+)?:?", "", text).strip()
     return text or "unknown format"
+
+
+def mask_reference_notes(
+    region: Any, stacks: Sequence[Stack], *, study_uid: str | None
+) -> list[str]:
+    """Check that a SEG / RTSTRUCT region belongs to the study it is measured on.
+
+    A mask's coordinates mean something only in its own frame of reference (PS3.3 C.7.4.1):
+    one drawn in a frame of reference no series of the study has is refused. A mask of
+    another study that shares a frame of reference, or that names a series absent from the
+    study, is measured, and the returned notes (one line each, for ``qc``) say so.
+
+    Raises
+    ------
+    sigreport.errors.InputError
+        When the region's frame of reference is none of the study's.
+    """
+    notes: list[str] = []
+    frame = getattr(region, "frame_of_reference_uid", None)
+    source = getattr(region, "source", "") or "mask"
+    frames = {s.frame_of_reference_uid for s in stacks if s.frame_of_reference_uid}
+    if frame and frames and frame not in frames:
+        raise InputError(
+            f"mask file {source} (ROI {region.id}) was drawn in frame of reference {frame}, "
+            f"which no series of the study has ({', '.join(sorted(frames))}); it belongs to "
+            "another study or acquisition"
+        )
+    drawn_on = getattr(region, "study_instance_uid", None)
+    if drawn_on and study_uid and drawn_on != study_uid:
+        notes.append(
+            f"ROI {region.id}: mask file {source} names study {drawn_on}, not this study "
+            f"({study_uid}); it shares the frame of reference, check that it belongs here"
+        )
+    series = getattr(region, "source_series_uid", None)
+    if series and series not in {s.series_instance_uid for s in stacks}:
+        notes.append(
+            f"ROI {region.id}: mask file {source} was drawn on series {series}, which is not "
+            "in the study folder"
+        )
+    return notes

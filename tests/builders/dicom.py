@@ -30,6 +30,11 @@ from pydicom.uid import (
 
 MR_IMAGE = "1.2.840.10008.5.1.4.1.1.4"
 ENHANCED_MR = "1.2.840.10008.5.1.4.1.1.4.1"
+# The defaults: every series a test writes belongs to one study of one patient, in one frame of
+# reference (a series belongs to one study, PS3.3 A.1.2.3; the Frame of Reference module is a
+# series-level module), unless the test passes its own UIDs.
+STUDY_UID = "1.2.826.0.1.3680043.8.498.77701"
+FRAME_OF_REFERENCE_UID = "1.2.826.0.1.3680043.8.498.77702"
 
 
 def rotation(axis: Sequence[float], degrees: float) -> np.ndarray:
@@ -126,8 +131,8 @@ def classic_slices(
         raise ValueError(f'Argument "stored" must be int16 or uint16, got {stored.dtype}')
     direction = _check_direction(direction)
     series_uid = series_uid or generate_uid()
-    study_uid = study_uid or generate_uid()
-    for_uid = for_uid or generate_uid()
+    study_uid = study_uid or STUDY_UID
+    for_uid = for_uid or FRAME_OF_REFERENCE_UID
     normal = direction[:, 2]
     out = []
     for k in range(stored.shape[0]):
@@ -277,9 +282,9 @@ def enhanced_dataset(
     order = list(frame_order) if frame_order is not None else list(range(n))[::-1]
     ds = _base(
         ENHANCED_MR,
-        study_uid=generate_uid(),
+        study_uid=STUDY_UID,
         series_uid=series_uid or generate_uid(),
-        for_uid=generate_uid(),
+        for_uid=FRAME_OF_REFERENCE_UID,
         series_number=5,
         description=description,
         modality="MR",
@@ -430,9 +435,9 @@ def mosaic_dataset(
     )
     ds = _base(
         MR_IMAGE,
-        study_uid=generate_uid(),
+        study_uid=STUDY_UID,
         series_uid=generate_uid(),
-        for_uid=generate_uid(),
+        for_uid=FRAME_OF_REFERENCE_UID,
         series_number=7,
         description=description,
         modality="MR",

@@ -339,7 +339,11 @@ def test_decimal_rescale_of_a_real_12_bit_image(tmp_path: Path) -> None:
     lacks a SeriesInstanceUID; given one, its values must be pydicom's after the rescale, and
     its ImageType R (real part) keeps it unmeasured."""
     ds = pydicom.dcmread(NIBABEL / "nicom/tests/data/decimal_rescale.dcm")
+    # It also lacks the Study and SOP Instance UIDs, which every reference to the image needs
+    # (a file without them is skipped with that reason): given here too.
     ds.SeriesInstanceUID = pydicom.uid.generate_uid()
+    ds.StudyInstanceUID = pydicom.uid.generate_uid()
+    ds.SOPInstanceUID = pydicom.uid.generate_uid()
     (tmp_path / "study").mkdir()
     ds.save_as(tmp_path / "study" / "im.dcm")
     (stack,) = index_study(tmp_path / "study").stacks
