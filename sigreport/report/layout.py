@@ -153,18 +153,24 @@ def summary_table(
                     str(lesion.get("reference")), str(lesion.get("reference") or "")
                 ),
                 "cells": cells,
-                "enhancement": _enhancement_cell(lesion.get("enhancement") or {}),
-                "drops": _drop_cells(lesion.get("suppression") or {}),
+                "enhancement": _enhancement_cell(
+                    lesion.get("enhancement") or {}, flow_void=lesion.get("flow_void") is True
+                ),
+                "drops": _drop_cells(
+                    lesion.get("suppression") or {}, flow_void=lesion.get("flow_void") is True
+                ),
             }
         )
     return {"roles": roles, "rows": rows}
 
 
-def _enhancement_cell(enhancement: Mapping[str, Any]) -> dict[str, str]:
+def _enhancement_cell(enhancement: Mapping[str, Any], *, flow_void: bool) -> dict[str, str]:
+    """A flow void holds only noise: its percent changes are not findings (not assessed), as in
+    the text and table.csv."""
     if not enhancement or not (enhancement.get("pre") or enhancement.get("post")):
         return {"value": "", "words": ""}
     value = enhancement.get("percent")
-    if value is None:
+    if value is None or flow_void:
         return {"value": "", "words": NOT_ASSESSED}
     if enhancement.get("enhancing"):
         pattern = enhancement.get("pattern")
@@ -176,14 +182,14 @@ def _enhancement_cell(enhancement: Mapping[str, Any]) -> dict[str, str]:
     return {"value": percent(value), "words": words}
 
 
-def _drop_cells(suppression: Mapping[str, Any]) -> list[dict[str, str]]:
+def _drop_cells(suppression: Mapping[str, Any], *, flow_void: bool) -> list[dict[str, str]]:
     out = []
     for kind in ("fluid", "fat"):
         flag = suppression.get(kind)
         if not flag:
             continue
         drop = flag.get("drop_percent")
-        if drop is None:
+        if drop is None or flow_void:
             out.append({"kind": kind, "value": "", "words": NOT_ASSESSED})
             continue
         words = ""

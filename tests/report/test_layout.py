@@ -190,3 +190,25 @@ def test_reference_medians_read_from_either_schema_2_shape():
         "T1": None,
     }
     assert roi_medians({"snr": {"T2": 40.0}}) == {}
+
+
+def test_summary_says_not_assessed_for_a_flow_void(findings):
+    # A flow void holds only noise (common practice: fast-flowing blood is dark on every
+    # series): its enhancement and drops are not findings, in the summary as in the text.
+    import copy
+
+    voided = copy.deepcopy(findings)
+    lesion = voided["lesions"][0]
+    lesion["flow_void"] = True
+    lesion["enhancement"] = {**(lesion.get("enhancement") or {}), "pre": "T1", "post": "T1POST",
+                             "percent": -2.0, "enhancing": False}  # fmt: skip
+    row = summary_table(voided, {})["rows"][0]
+    assert row["enhancement"] == {"value": "", "words": "not assessed"}
+    assert row["drops"] and all(
+        d["value"] == "" and d["words"] == "not assessed" for d in row["drops"]
+    )
+    plain = summary_table(findings, {})["rows"][0]
+    assert (
+        plain["enhancement"]["value"] != ""
+        or findings["lesions"][0]["enhancement"]["percent"] is None
+    )
