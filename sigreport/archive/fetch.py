@@ -26,7 +26,7 @@ from typing import TYPE_CHECKING
 
 from sigreport.archive.dicomweb import Archive, StoreAnswer
 from sigreport.errors import InputError
-from sigreport.model import Progress, Role, SkippedFile, Stack, StudyIndex
+from sigreport.model import Progress, Role, SkippedFile, Stack, StudyIndex, say
 
 if TYPE_CHECKING:
     from sigreport.pipeline import ReportRun
@@ -65,11 +65,6 @@ class FetchedStudy:
     n_instances: int
 
 
-def _say(progress: Progress | None, message: str) -> None:
-    if progress is not None:
-        progress(message)
-
-
 def read_study(
     archive: Archive,
     study_uid: str,
@@ -88,7 +83,7 @@ def read_study(
     from sigreport.ingest.index import index_records
 
     study_uid = _check_uid(study_uid)
-    _say(progress, f"searching study {study_uid} in {archive.url}")
+    say(progress, f"searching study {study_uid} in {archive.url}")
     found = archive.search_series(study_uid)
     series_uids = []
     for item in found:
@@ -100,7 +95,7 @@ def read_study(
     records = []
     skipped = []
     for series_uid in series_uids:
-        _say(progress, f"reading the metadata of series {series_uid}")
+        say(progress, f"reading the metadata of series {series_uid}")
         for ds in archive.series_metadata(study_uid, series_uid):
             name = Path("dicomweb") / series_uid / str(ds.get("SOPInstanceUID", "unknown"))
             try:
@@ -188,7 +183,7 @@ def fetch_needed_series(
     n_instances = 0
     for k, series_uid in enumerate(wanted, start=1):
         roles_here = ", ".join(r for r, s in needed.items() if s.series_instance_uid == series_uid)
-        _say(progress, f"fetching series {series_uid} ({roles_here})")
+        say(progress, f"fetching series {series_uid} ({roles_here})")
         folder = dest / SERIES_FOLDER.format(k)
         folder.mkdir()
         for n, ds in enumerate(archive.retrieve_series(study.study_uid, series_uid), start=1):
@@ -314,7 +309,7 @@ def report_from_archive(
             site_lexicon=site,
             progress=progress,
         )
-        _say(
+        say(
             progress,
             f"fetched {len(fetched.fetched_series)} series ({fetched.n_instances} instances)",
         )
@@ -330,7 +325,7 @@ def report_from_archive(
         )
     stored = None
     if push:
-        _say(progress, f"storing sr.dcm in {archive.url}")
+        say(progress, f"storing sr.dcm in {archive.url}")
         try:
             stored = archive.store(out_dir / "sr.dcm")
         except InputError as exc:

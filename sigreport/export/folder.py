@@ -36,7 +36,7 @@ from sigreport.export.deidentify import (
     deidentify_sr,
     identifier_pattern,
 )
-from sigreport.model import Progress
+from sigreport.model import Progress, say
 
 # Identifiers shorter than this are not searched for in the finished files (see
 # deidentify.MIN_TEXT_LENGTH); they are removed from every field that holds them all the same.
@@ -111,7 +111,7 @@ def export_report(
         except Exception as exc:  # corrupt file
             raise InputError(f"{sr_path}: not readable as DICOM: {exc}") from None
 
-    _say(progress, f"de-identifying {report_dir}")
+    say(progress, f"de-identifying {report_dir}")
     identifiers = Identifiers.collect(sr, findings)
     uids = UidMap()
     files: dict[str, bytes] = {}
@@ -194,11 +194,6 @@ def find_identifiers(
             if needle.search(data):
                 found.append((name, what))
     return found
-
-
-def _say(progress: Progress | None, message: str) -> None:
-    if progress is not None:
-        progress(message)
 
 
 def _overlaps(a: Path, b: Path) -> bool:

@@ -269,11 +269,12 @@ def mirror_reference(
     for other_id, other in lesions.items():
         if reason is not None:
             break
-        shared = int(np.count_nonzero(sample.mask & sample_region(other, anchor).mask))
+        shared = sample.overlap(sample_region(other, anchor))
         if shared:
             reason = f"overlaps lesion {other_id} ({shared} anchor voxels)"
     if reason is None:
-        values = sitk.GetArrayViewFromImage(anchor)[sample.mask].astype(np.float64)
+        # Within the sample's box (it is kept to the region's box).
+        values = sitk.GetArrayViewFromImage(anchor)[sample.box][sample.box_mask].astype(np.float64)
         mean = float(values.mean())
         cv = float(values.std()) / mean if mean > 0 else math.inf
         if cv > max_cv:
