@@ -362,9 +362,12 @@ def private_tags(group: int, offsets: tuple[int, ...], blocks: range) -> list[in
 # this vendor's files reserve a handful of blocks from 0x10 on, e.g. DD 001 to DD 005 at
 # 0x10-0x14 in nibabel's philips_mprage.dcm.gz; 16 blocks keep the scan's tag list short).
 PHILIPS_BLOCKS = range(0x10, 0x20)
-# (2005,xx0D/0E/A8) of "Philips MR Imaging DD 001", (2005,xx0F) of "... DD 005" (the per-frame
-# item), (2001,xx84) of "Philips Imaging DD 001" (see VENDOR_TI_ELEMENTS, philips_scale).
-PHILIPS_TAGS = private_tags(0x2005, (0x0D, 0x0E, 0x0F, 0xA8), PHILIPS_BLOCKS) + private_tags(
+# (2005,xx0D/0E/A8) of "Philips MR Imaging DD 001" and (2001,xx84) of "Philips Imaging DD 001"
+# (see VENDOR_TI_ELEMENTS, philips_scale). The per-frame private item (2005,xx0F) of "... DD
+# 005" lives inside the Per-frame Functional Groups, which are read whole; not listing it keeps
+# a classic image's private sequences out of the scan (the fast path declines undefined-length
+# sequences it is asked to keep).
+PHILIPS_TAGS = private_tags(0x2005, (0x0D, 0x0E, 0xA8), PHILIPS_BLOCKS) + private_tags(
     0x2001, (0x84,), PHILIPS_BLOCKS
 )
 

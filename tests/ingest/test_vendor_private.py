@@ -470,3 +470,22 @@ def test_signed_twelve_bit_pixels_with_rescale(tmp_path: Path) -> None:
         expected = pydicom.dcmread(path).pixel_array * 2.0 - 100.0
         np.testing.assert_array_equal(ours[k], expected)
     np.testing.assert_array_equal(ours, values * 2.0 - 100.0)
+
+
+@pytest.mark.parametrize("syntax", ["1.2.840.10008.1.2", "1.2.840.10008.1.2.1"])
+def test_fast_header_path_reads_the_private_elements_as_pydicom_does(
+    tmp_path: Path, syntax: str
+) -> None:
+    """The scan's own header walk keeps the private creators and elements of every block it
+    lists; pydicom's reader is the oracle (implicit VR: pydicom's private dictionary gives the
+    VRs)."""
+    from sigreport.ingest.header import read_frames
+
+    ds = classic_slices(_stored(n=1), extra={"RepetitionTime": "9000", "EchoTime": "110",
+                                              "ScanningSequence": ["SE", "IR"]})[0]  # fmt: skip
+    path = save(_philips(ds, scale=0.125, ti_2001="2450"), tmp_path / "p.dcm", syntax)
+    (fast,) = read_frames(path)
+    (slow,) = read_frames(path, fast=False)
+    assert fast.scaling == slow.scaling and fast.scaling.private_scale_slope == 0.125
+    assert fast.acquisition == slow.acquisition
+    assert fast.acquisition.inversion_time_ms == 2450.0
