@@ -230,6 +230,14 @@ class Acquisition:
     # FrameAcquisitionDateTime) of the stack's slices, and ContrastBolusStartTime (0018,1042).
     acquisition_time_s: float | None = None
     contrast_start_time_s: float | None = None
+    # Where inversion_time_ms came from when not the standard attribute: a vendor's private
+    # element or header (docs/ingestion.md, Vendor value quirks), e.g. "private (2001,xx84) of
+    # 'Philips Imaging DD 001'"; None for the standard InversionTime / InversionTimes.
+    inversion_time_source: str | None = None
+    # Every distinct value of a multi-valued EchoTime in one image (ms, in the header's order);
+    # empty for a single value. echo_time_ms is then the image's own echo (EchoNumbers picks
+    # it) or None (a combined image: the role rules judge the whole range).
+    echo_times_in_image_ms: tuple[float, ...] = ()
 
 
 @dataclass(frozen=True)

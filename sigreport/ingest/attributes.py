@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import math
 import struct
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from functools import cache
 from pathlib import Path
 from typing import Any
@@ -35,6 +35,9 @@ SECONDARY_CAPTURE = (
 )
 MULTIFRAME_CLASSES = (ENHANCED_MR, LEGACY_ENHANCED_MR)
 IMAGE_CLASSES = (MR_IMAGE, *MULTIFRAME_CLASSES, *SECONDARY_CAPTURE)
+
+
+PHILIPS_FP = "philips floating point"
 
 
 class SkipFile(Exception):
@@ -65,13 +68,22 @@ class Scaling:
 
     slope: float = 1.0
     intercept: float = 0.0
-    source: str = "none"  # "rescale", "pixel value transformation", "real world value mapping"
+    source: str = "none"  # "rescale", "pixel value transformation", "real world value mapping",
+    # "philips floating point" (see ``philips_fp_scaling``)
     lut: tuple[float, ...] | None = None
     lut_first: int = 0
+    # The vendor's private scale slope (Philips SS) when the frame carries one, whether or not
+    # it was applied; the display rescale it was combined with (RS, RI) when it was.
+    private_scale_slope: float | None = None
 
     def key(self) -> str:
         if self.lut is not None:
             return f"rwvm-lut:{self.lut_first}:{hash(self.lut)}"
+        if self.source == PHILIPS_FP:
+            # Floating-point values are the vendor's scale meant for comparing series (FP =
+            # DV / (RS x SS), docs/ingestion.md): one key for every frame so scaled, whatever
+            # its own RS and SS.
+            return PHILIPS_FP
         return f"{self.source}:{self.slope!r}:{self.intercept!r}"
 
 
@@ -291,6 +303,149 @@ def classic_b_value(ds: Dataset) -> float | None:
     return None
 
 
+def private_value(ds: Dataset, group: int, creator: str, offset: int) -> Any:
+    """The value of private element (gggg,xxEE) of ``creator``, or None.
+
+    The block byte xx is the one the data set reserved for ``creator`` with a private creator
+    element (gggg,00xx) (PS3.5 7.8.1), found by pydicom's ``Dataset.private_block``: never a
+    fixed (gggg,10EE), since a writer may reserve any block from 0x10 to 0xFF."""
+    if not any(tag >> 16 == group for tag in ds.keys()):
+        return None  # no element of the group: nothing to search
+    try:
+        value = ds.private_block(group, creator)[offset].value
+    except Exception:  # no such block or element, or a value pydicom cannot convert
+        return None
+    return None if value is None or value == "" else value
+
+
+def _first_number(value: Any) -> float | None:
+    """The first number of a private value (DS text, FL / FD numbers, or bytes of text)."""
+    if isinstance(value, bytes):
+        value = value.decode("ascii", "replace").strip("\0 ")
+    if isinstance(value, str):
+        value = value.split("\\")[0]
+    elif hasattr(value, "__getitem__"):
+        if len(value) == 0:
+            return None
+        value = value[0]
+    try:
+        number = float(value)
+    except (TypeError, ValueError):
+        return None
+    return number if math.isfinite(number) else None
+
+
+# Private elements holding an inversion time (ms), by the private dictionaries available to us:
+# "Philips Imaging DD 001" (2001,xx84) "Inversion Time" (pydicom's private dictionary and
+# dicom3tools' dictionary, as `dcdump` names it); "Philips MR Imaging DD 001" (2005,xxA8)
+# "Inversion Time" (dicom3tools' dictionary). No GE element is used: neither dictionary names
+# an inversion time among the GEMS_ACQU_01, GEMS_PARM_01 or GEMS_RELA_01 elements (see
+# docs/ingestion.md, Vendor value quirks).
+VENDOR_TI_ELEMENTS: tuple[tuple[int, str, int], ...] = (
+    (0x2001, "Philips Imaging DD 001", 0x84),
+    (0x2005, "Philips MR Imaging DD 001", 0xA8),
+)
+
+
+def private_tags(group: int, offsets: tuple[int, ...], blocks: range) -> list[int]:
+    """The private creator elements (gggg,00xx) and the elements (gggg,xxEE) of ``offsets`` for
+    every block xx in ``blocks``: the tags a header-only read must keep so that
+    ``private_value`` can find an element whichever block its creator reserved."""
+    return [
+        (group << 16) | element
+        for block in blocks
+        for element in (block, *((block << 8) | offset for offset in offsets))
+    ]
+
+
+# Blocks searched by the scan for the vendor elements read here (PS3.5 7.8.1 allows 0x10-0xFF;
+# this vendor's files reserve a handful of blocks from 0x10 on, e.g. DD 001 to DD 005 at
+# 0x10-0x14 in nibabel's philips_mprage.dcm.gz; 16 blocks keep the scan's tag list short).
+PHILIPS_BLOCKS = range(0x10, 0x20)
+# (2005,xx0D/0E/A8) of "Philips MR Imaging DD 001" and (2001,xx84) of "Philips Imaging DD 001"
+# (see VENDOR_TI_ELEMENTS, philips_scale). The per-frame private item (2005,xx0F) of "... DD
+# 005" lives inside the Per-frame Functional Groups, which are read whole; not listing it keeps
+# a classic image's private sequences out of the scan (the fast path declines undefined-length
+# sequences it is asked to keep).
+PHILIPS_TAGS = private_tags(0x2005, (0x0D, 0x0E, 0xA8), PHILIPS_BLOCKS) + private_tags(
+    0x2001, (0x84,), PHILIPS_BLOCKS
+)
+
+
+def vendor_inversion_time(ds: Dataset) -> tuple[float, str] | None:
+    """A positive inversion time (ms) from a vendor's private element, with a phrase naming the
+    element, or None. Zero means "no inversion" in these elements (a gradient echo without
+    preparation writes 0), so it is not a time."""
+    for group, creator, offset in VENDOR_TI_ELEMENTS:
+        number = _first_number(private_value(ds, group, creator, offset))
+        if number is not None and number > 0:
+            return number, f"private ({group:04X},xx{offset:02X}) of '{creator}'"
+    return None
+
+
+def echo_time_values(ds: Dataset) -> tuple[float | None, tuple[float, ...]]:
+    """EchoTime (0018,0081) and, when the element holds several values (VM 1 in PS3.3
+    C.8.3.1, but some writers list every echo of the acquisition, or the echoes a combined
+    image was made of), all of them.
+
+    Returns ``(te, values)``: with one value, ``(te, ())``. With several, the image's own echo
+    when EchoNumbers (0018,0086) n picks the n-th value of the list, else None (the role rules
+    then judge the whole range, see ``roles``); ``values`` are the distinct values in the
+    header's order."""
+    raw = _get(ds, "EchoTime")
+    if raw is None:
+        return None, ()
+    items = raw.split("\\") if isinstance(raw, str) else raw
+    if isinstance(items, str | bytes) or not hasattr(items, "__iter__"):
+        items = [items]
+    values: list[float] = []
+    for item in items:
+        try:
+            number = float(item)
+        except (TypeError, ValueError):
+            continue
+        if math.isfinite(number) and number not in values:
+            values.append(number)
+    if not values:
+        return None, ()
+    if len(values) == 1:
+        return values[0], ()
+    echo = _int(ds, "EchoNumbers")
+    if echo is not None and 1 <= echo <= len(values):
+        return values[echo - 1], tuple(values)
+    return None, tuple(values)
+
+
+def philips_scale(item: Dataset) -> tuple[float | None, float | None]:
+    """The Philips private scale slope SS and scale intercept of one data set (a classic image,
+    or an Enhanced MR frame's private item): "Philips MR Imaging DD 001" (2005,xx0E) "Scale
+    Slope" and (2005,xx0D) "Scale Intercept" (names from dicom3tools' private dictionary;
+    nibabel's DICOM wrapper reads the same (2005,xx0E))."""
+    slope = _first_number(private_value(item, 0x2005, "Philips MR Imaging DD 001", 0x0E))
+    intercept = _first_number(private_value(item, 0x2005, "Philips MR Imaging DD 001", 0x0D))
+    return slope, intercept
+
+
+def philips_fp_scaling(display: Scaling, slope: float | None, intercept: float | None) -> Scaling:
+    """The vendor's floating-point value (FP) scaling of a frame whose display scaling (the
+    rescale RS, RI, or none) is ``display``: FP = DV / (RS x SS), DV = SV x RS + RI (nibabel's
+    PAR/REC reader documents these two scalings, ``parrec.py``), so FP = SV / SS + RI / (RS x
+    SS). Applied only when SS is a positive number and the scale intercept is absent or zero
+    (no published formula uses a non-zero one); otherwise ``display`` is kept, carrying SS so
+    the stack can say why. A Real World Value Mapping is never replaced (it wins, PS3.3
+    C.7.6.16.2.11)."""
+    if slope is None or display.source == "real world value mapping":
+        return display
+    if slope <= 0 or (intercept is not None and intercept != 0.0) or display.slope == 0:
+        return replace(display, private_scale_slope=slope)
+    return Scaling(
+        slope=1.0 / slope,
+        intercept=display.intercept / (display.slope * slope),
+        source=PHILIPS_FP,
+        private_scale_slope=slope,
+    )
+
+
 def _contrast_classic(ds: Dataset) -> str | None:
     agent = _str(ds, "ContrastBolusAgent")
     if agent:
@@ -302,11 +457,24 @@ def _contrast_classic(ds: Dataset) -> str | None:
 
 
 def classic_acquisition(ds: Dataset) -> Acquisition:
-    """The Acquisition of a classic MR image (PS3.3 C.8.3.1 MR Image Module)."""
+    """The Acquisition of a classic MR image (PS3.3 C.8.3.1 MR Image Module).
+
+    A missing InversionTime is read from the vendor's private element where a dictionary
+    available to us names it (``vendor_inversion_time``); a multi-valued EchoTime keeps every
+    value (``echo_time_values``)."""
+    ti = _float(ds, "InversionTime")
+    ti_source = None
+    if ti is None:
+        found = vendor_inversion_time(ds)
+        if found is not None:
+            ti, ti_source = found
+    te, te_values = echo_time_values(ds)
     return Acquisition(
         repetition_time_ms=_float(ds, "RepetitionTime"),
-        echo_time_ms=_float(ds, "EchoTime"),
-        inversion_time_ms=_float(ds, "InversionTime"),
+        echo_time_ms=te,
+        echo_times_in_image_ms=te_values,
+        inversion_time_ms=ti,
+        inversion_time_source=ti_source,
         flip_angle_deg=_float(ds, "FlipAngle"),
         scanning_sequence=_strs(ds, "ScanningSequence"),
         sequence_variant=_strs(ds, "SequenceVariant"),
@@ -386,7 +554,9 @@ def rwvm_scaling(item: Dataset) -> Scaling | None:
 
 
 def classic_scaling(ds: Dataset) -> Scaling:
-    """RescaleSlope/Intercept, or a Real World Value Mapping, which takes precedence."""
+    """RescaleSlope/Intercept, or a Real World Value Mapping, which takes precedence; the
+    Philips floating-point scaling over the rescale when the private scale slope is present
+    (``philips_fp_scaling``)."""
     item = _first_item(ds, "RealWorldValueMappingSequence")
     if item is not None:
         mapped = rwvm_scaling(item)
@@ -394,13 +564,14 @@ def classic_scaling(ds: Dataset) -> Scaling:
             return mapped
     slope = _float(ds, "RescaleSlope")
     intercept = _float(ds, "RescaleIntercept")
-    if slope is None and intercept is None:
-        return Scaling()
-    return Scaling(
-        slope=1.0 if slope is None else slope,
-        intercept=0.0 if intercept is None else intercept,
-        source="rescale",
-    )
+    display = Scaling()
+    if slope is not None or intercept is not None:
+        display = Scaling(
+            slope=1.0 if slope is None else slope,
+            intercept=0.0 if intercept is None else intercept,
+            source="rescale",
+        )
+    return philips_fp_scaling(display, *philips_scale(ds))
 
 
 def common_fields(ds: Dataset, series_uid: str) -> dict[str, Any]:

@@ -35,7 +35,7 @@ __all__ = ["HeaderCache", "cache_dir", "CACHE_ENV"]
 
 CACHE_ENV = "SIGREPORT_CACHE_DIR"
 # Bumped when the cached records' meaning changes (with the package version, part of the key).
-_FORMAT = 1
+_FORMAT = 2  # 2: Acquisition and Scaling fields for vendor TI, echo lists, private scale
 # Modules whose classes a cache file may hold (sigreport's frozen dataclasses and enums), and
 # the few standard types they use.
 _ALLOWED_MODULES = ("sigreport.model", "sigreport.ingest.header", "sigreport.ingest.attributes")

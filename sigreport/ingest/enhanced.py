@@ -33,8 +33,12 @@ from sigreport.ingest.attributes import (
     check_orientation,
     classic_acquisition,
     common_fields,
+    philips_fp_scaling,
+    philips_scale,
+    private_value,
     rwvm_scaling,
     seconds_of_day,
+    vendor_inversion_time,
 )
 from sigreport.model import Acquisition
 
@@ -92,9 +96,26 @@ class FunctionalGroups:
         )
 
 
+def philips_frame_item(groups: FunctionalGroups, index: int) -> Dataset | None:
+    """One vendor's per-frame private item: the first item of (2005,xx0F) of "Philips MR
+    Imaging DD 005" in the frame's Per-frame Functional Groups item (a sequence in pydicom's
+    private dictionary; the vendor keeps each frame's classic attributes and its private scale
+    there, as nibabel's ``philips_mprage.dcm.gz`` shows), else None."""
+    if index >= len(groups.per_frame):
+        return None
+    seq = private_value(groups.per_frame[index], 0x2005, "Philips MR Imaging DD 005", 0x0F)
+    try:
+        item = seq[0] if seq is not None and len(seq) > 0 else None
+    except TypeError:
+        return None
+    return item if isinstance(item, Dataset) else None
+
+
 def frame_scaling(groups: FunctionalGroups, index: int, ds: Dataset) -> Scaling:
     """Real World Value Mapping first, then Pixel Value Transformation, then top-level rescale
-    (PS3.3 C.7.6.16.2.9 and C.7.6.16.2.11)."""
+    (PS3.3 C.7.6.16.2.9 and C.7.6.16.2.11); the vendor's floating-point scaling over the
+    rescale when the frame carries the Philips private scale slope (per-frame private item,
+    the Per-frame Functional Groups item itself, or the top level; ``philips_fp_scaling``)."""
     for item in groups.sequence(index, "RealWorldValueMappingSequence"):
         mapped = rwvm_scaling(item)
         if mapped is not None:
@@ -102,13 +123,22 @@ def frame_scaling(groups: FunctionalGroups, index: int, ds: Dataset) -> Scaling:
     pvt = groups.item(index, "PixelValueTransformationSequence")
     source = pvt if pvt is not None else ds
     slope, intercept = _float(source, "RescaleSlope"), _float(source, "RescaleIntercept")
-    if slope is None and intercept is None:
-        return Scaling()
-    return Scaling(
-        slope=1.0 if slope is None else slope,
-        intercept=0.0 if intercept is None else intercept,
-        source="pixel value transformation" if pvt is not None else "rescale",
-    )
+    display = Scaling()
+    if slope is not None or intercept is not None:
+        display = Scaling(
+            slope=1.0 if slope is None else slope,
+            intercept=0.0 if intercept is None else intercept,
+            source="pixel value transformation" if pvt is not None else "rescale",
+        )
+    private = philips_frame_item(groups, index)
+    frame = groups.per_frame[index] if index < len(groups.per_frame) else None
+    for holder in (private, frame, ds):
+        if holder is None:
+            continue
+        scale, scale_intercept = philips_scale(holder)
+        if scale is not None:
+            return philips_fp_scaling(display, scale, scale_intercept)
+    return display
 
 
 def _contrast(ds: Dataset, groups: FunctionalGroups, index: int) -> str | None:
@@ -172,12 +202,30 @@ def frame_acquisition(ds: Dataset, groups: FunctionalGroups, index: int) -> Acqu
     ti = _float(modifier, "InversionTimes")
     if ti is None:
         ti = _float(timing, "InversionTimes")
+    ti_source = None if ti is not None else base.inversion_time_source
+    if ti is None and base.inversion_time_ms is None:
+        # The vendor's per-frame private item (classic InversionTime, or its private TI).
+        private = philips_frame_item(groups, index)
+        if private is not None:
+            ti = _float(private, "InversionTime")
+            if ti is not None and ti <= 0:
+                ti = None  # this vendor writes 0 for "no inversion"
+            if ti is not None:
+                ti_source = "InversionTime in the private per-frame item (2005,xx0F)"
+            else:
+                found = vendor_inversion_time(private)
+                if found is not None:
+                    ti, ti_source = found
     b_value = _float(diffusion, "DiffusionBValue")
     standard = _frame_standard_fields(ds, base, frame_type, modifier, diffusion, content)
     return Acquisition(
         repetition_time_ms=_float(timing, "RepetitionTime") or base.repetition_time_ms,
         echo_time_ms=_float(echo, "EffectiveEchoTime") or base.echo_time_ms,
+        echo_times_in_image_ms=()
+        if _float(echo, "EffectiveEchoTime")
+        else base.echo_times_in_image_ms,
         inversion_time_ms=ti if ti is not None else base.inversion_time_ms,
+        inversion_time_source=ti_source,
         flip_angle_deg=_float(timing, "FlipAngle") or base.flip_angle_deg,
         scanning_sequence=tuple(seq),
         sequence_variant=tuple(variant),

@@ -31,6 +31,7 @@ from sigreport.ingest.attributes import (
     LEGACY_ENHANCED_MR,
     MR_IMAGE,
     MULTIFRAME_CLASSES,
+    PHILIPS_TAGS,
     SECONDARY_CAPTURE,
     FrameRecord,
     Scaling,
@@ -99,7 +100,9 @@ _PRIVATE_TAGS = [
     for block in (0x10, 0x11)
     for element in (block, (block << 8) | offset)
 ]
-SCAN_TAGS = [tag_for_keyword(k) for k in _SCAN_KEYWORDS] + _PRIVATE_TAGS
+SCAN_TAGS = [tag_for_keyword(k) for k in _SCAN_KEYWORDS] + sorted(
+    set(_PRIVATE_TAGS) | set(PHILIPS_TAGS)
+)
 _SCAN_TAG_SET = frozenset(t for t in SCAN_TAGS if t is not None)
 
 
@@ -407,6 +410,16 @@ def classic_frame(
     bad = checks.scaling_reason(scaling.slope, scaling.intercept, scaling.lut)
     if bad is not None:
         raise SkipFile(bad)
+    acquisition = classic_acquisition(ds)
+    notes: tuple[str, ...] = ()
+    if acquisition.echo_times_in_image_ms:
+        shown = "\\".join(f"{v:g}" for v in acquisition.echo_times_in_image_ms)
+        taken = (
+            f"echo {acquisition.echo_number} ({acquisition.echo_time_ms:g} ms) taken by EchoNumbers"
+            if acquisition.echo_time_ms is not None
+            else "no EchoNumbers to pick one: the role must hold over the whole range"
+        )
+        notes = (f"EchoTime (0018,0081) holds several values ({shown} ms) in one image; {taken}",)
     return FrameRecord(
         path=path,
         frame=None,
@@ -417,7 +430,8 @@ def classic_frame(
         position=position,  # type: ignore[arg-type]
         orientation=orientation,  # type: ignore[arg-type]
         pixel_spacing=spacing,  # type: ignore[arg-type]
-        acquisition=classic_acquisition(ds),
+        warnings=notes,
+        acquisition=acquisition,
         scaling=scaling,
         spacing_between_slices=_float(ds, "SpacingBetweenSlices"),
         **common_fields(ds, series_uid),

@@ -19,6 +19,7 @@ from sigreport.ingest.roles import (
     load_role_bands,
     refine_roles_across_stacks,
 )
+from sigreport.ingest.scaling import scaling_notes
 from sigreport.ingest.stacks import build_stacks
 from sigreport.model import Progress, SkippedFile, StudyIndex, StudyInfo
 
@@ -169,7 +170,7 @@ def index_records(
     skipped = list({(s.path, s.reason): s for s in skipped}.values())
 
     stacks = []
-    for stack in build_stacks(records):
+    for stack in scaling_notes(build_stacks(records), records):
         role, reason, confidence = _infer(stack.acquisition, stack.description, bands)
         stacks.append(replace(stack, role=role, role_reason=reason, confidence=confidence))
     stacks = assign_dynamic_phases(refine_roles_across_stacks(stacks, bands))

@@ -40,6 +40,7 @@ _SCHEMA: dict[str, dict[str, str]] = {
         "flair_ti_ms": "band",
         "flair_te_ms": "band",
         "t1_prep_te_ms": "band",
+        "sequence_name_prefixes": "words",
     },
     "diffusion": {"dwi_min_b": "number", "directional": "words"},
     "scan_options": {
@@ -93,6 +94,15 @@ _SCHEMA: dict[str, dict[str, str]] = {
         "max_te_ms": "number",
         "max_slices_per_plane": "number",
         "min_planes": "number",
+    },
+    "scout_3d": {
+        "max_tr_ms": "number",
+        "max_te_ms": "number",
+        "min_pixel_mm": "number",
+        "max_matrix": "number",
+        "max_slices": "number",
+        "min_slab_step_mm": "number",
+        "measurable_words": "words",
     },
     "confidence": {
         "stated": "unit",
@@ -238,7 +248,37 @@ def infer_role(
 
 
 def _infer(acq: Acquisition, description: str, b: RoleBands) -> tuple[Role, str, float | None]:
-    """:func:`_decide`, with no confidence for UNKNOWN."""
+    """:func:`_decide`, with no confidence for UNKNOWN, and the rule for several echo times in
+    one image (``Acquisition.echo_times_in_image_ms``)."""
+    values = acq.echo_times_in_image_ms
+    if len(values) >= 2:
+        shown = "\\".join(_fmt(v) for v in values)
+        if acq.echo_time_ms is not None:
+            # The vendor lists every echo; EchoNumbers picked this image's own.
+            role, reason, confidence = _decide(acq, description, b)
+            reason += f"; EchoTime lists {shown} ms, echo {acq.echo_number} taken"
+        else:
+            # A combined image (echoes summed or averaged): the role must hold over the whole
+            # range of echo times, else it is not one weighting.
+            low = _decide(replace(acq, echo_time_ms=min(values)), description, b)
+            high = _decide(replace(acq, echo_time_ms=max(values)), description, b)
+            if low[0] != high[0]:
+                return (
+                    Role.UNKNOWN,
+                    f"EchoTime holds several values ({shown} ms) in one image: "
+                    f"{low[0].value} at TE {_fmt(min(values))} ms, {high[0].value} at TE "
+                    f"{_fmt(max(values))} ms, not one weighting",
+                    None,
+                )
+            role, reason = (
+                low[0],
+                (
+                    f"{low[1]}; EchoTime holds several values ({shown} ms) in one image (combined "
+                    f"echoes), {low[0].value} over the whole range"
+                ),
+            )
+            confidence = min(low[2], high[2], b.number("confidence", "partial"))
+        return role, reason, (None if role is Role.UNKNOWN else confidence)
     role, reason, confidence = _decide(acq, description, b)
     return role, reason, (None if role is Role.UNKNOWN else confidence)
 
@@ -344,7 +384,12 @@ def _decide(acq: Acquisition, description: str, b: RoleBands) -> tuple[Role, str
     if te is not None:
         parts.append(f"TE {_fmt(te)} ms")
     if ev.inversion:
-        parts.append(f"TI {_fmt(ti)} ms" if ti is not None else "inversion, TI not given")
+        if ti is None:
+            parts.append("inversion, TI not given")
+        elif acq.inversion_time_source:
+            parts.append(f"TI {_fmt(ti)} ms ({acq.inversion_time_source})")
+        else:
+            parts.append(f"TI {_fmt(ti)} ms")
     else:
         parts.append("no inversion")
     if ev.family == "gradient echo" and acq.flip_angle_deg is not None:
@@ -520,9 +565,9 @@ def _evidence(acq: Acquisition, b: RoleBands) -> _Evidence:
     if acq.inversion_recovery is not None:
         inversion = acq.inversion_recovery
     elif seq:
-        inversion = "IR" in seq
+        inversion = "IR" in seq or _named_inversion(acq.sequence_name, b)
     else:
-        inversion = ti is not None and ti > 0
+        inversion = ti is not None and ti > 0 or _named_inversion(acq.sequence_name, b)
     options = {o.upper() for o in acq.scan_options}
     reason = ""
     suppression = (acq.spectrally_selected_suppression or "").upper()
@@ -542,6 +587,15 @@ def _evidence(acq: Acquisition, b: RoleBands) -> _Evidence:
         fat_sat=bool(reason),
         contrast=contrast,
         fat_sat_reason=reason,
+    )
+
+
+def _named_inversion(sequence_name: str | None, b: RoleBands) -> bool:
+    """True when SequenceName (0018,0024), without its leading ``*`` (one vendor's mark of a
+    2-D or 3-D sequence), starts with a lexicon inversion prefix ("tir" in "*tir2d1_16")."""
+    name = (sequence_name or "").strip().lstrip("*").upper()
+    return bool(name) and any(
+        name.startswith(prefix) for prefix in b.words("inversion", "sequence_name_prefixes")
     )
 
 
@@ -651,8 +705,9 @@ def refine_roles_across_stacks(stacks: list[Stack], bands: RoleBands) -> list[St
       is a (three-plane) localizer, whatever its description says: UNKNOWN.
     - DWI is the highest-b trace of the study: a trace of lower b is UNKNOWN, its reason naming
       the b-value kept (docs/ingestion.md, Roles).
+    - A single-plane scout of the T1 family (``scout_reason``) is UNKNOWN.
     """
-    out = list(stacks)
+    out = [_unless_scout(stack, bands) for stack in stacks]
     by_series: dict[str, list[int]] = {}
     for i, stack in enumerate(out):
         by_series.setdefault(stack.series_instance_uid, []).append(i)
@@ -702,6 +757,65 @@ def refine_roles_across_stacks(stacks: list[Stack], bands: RoleBands) -> list[St
                     confidence=None,
                 )
     return out
+
+
+_T1_FAMILY = (Role.T1, Role.T1FS, Role.T1POST, Role.T1POSTFS)
+
+
+def scout_reason(stack: Stack, bands: RoleBands) -> str | None:
+    """Why a stack the physics read as T1 is a 3-D scout, or None (lexicon ``[scout_3d]``).
+
+    A scout: not declared 2-D, very short TR and TE, no inversion, coarse in-plane pixels, a
+    small matrix, and few slices or thick partitions; no contrast agent and no temporal
+    position (a dynamic series is not a scout); and a description naming no role, sequence or
+    dynamic acquisition (``[description]`` role and post-contrast words, ``measurable_words``):
+    a named series keeps its role. A true 3-D T1 (MPRAGE-like with TI, or spoiled gradient echo
+    with ~1 mm voxels and enough slices) fails one of these and keeps T1."""
+    acq = stack.acquisition
+    tr, te = acq.repetition_time_ms, acq.echo_time_ms
+    if stack.role not in _T1_FAMILY or tr is None or te is None:
+        return None
+    if (acq.mr_acquisition_type or "").upper() == "2D":
+        return None
+    inverted = (
+        acq.inversion_time_ms is not None
+        or bool(acq.inversion_recovery)
+        or "IR" in {v.upper() for v in acq.scanning_sequence}
+    )
+    if inverted or acq.contrast_agent or (acq.temporal_position or 0) > 1:
+        return None
+    limit = bands.table["scout_3d"]
+    pixel = min(stack.spacing_mm[0], stack.spacing_mm[1])
+    matrix = max(stack.size[0], stack.size[1])
+    slices, step = stack.size[2], stack.spacing_mm[2]
+    if not (
+        tr <= limit["max_tr_ms"]
+        and te <= limit["max_te_ms"]
+        and pixel >= limit["min_pixel_mm"]
+        and matrix <= limit["max_matrix"]
+        and (slices <= limit["max_slices"] or step >= limit["min_slab_step_mm"])
+    ):
+        return None
+    named = set(bands.words("scout_3d", "measurable_words")) | bands.words(
+        "description", "post_contrast"
+    )
+    for key in ("T1", "T2", "PD", "FLAIR", "STIR", "T2STAR", "SWI", "ADC"):
+        named |= bands.words("description", key)
+    if _mentions(stack.description, frozenset(named)):
+        return None
+    return (
+        f"3-D scout: TR {_fmt(tr)} ms, TE {_fmt(te)} ms, no inversion, {pixel:.2g} mm pixels, "
+        f"{stack.size[0]}x{stack.size[1]} matrix, {slices} slices of {step:.2g} mm, and a "
+        f"description naming no role ({stack.description!r}); the physics alone said "
+        f"{stack.role.value}: name the series in the case file's [roles] to measure it"
+    )
+
+
+def _unless_scout(stack: Stack, bands: RoleBands) -> Stack:
+    reason = scout_reason(stack, bands)
+    if reason is None:
+        return stack
+    return replace(stack, role=Role.UNKNOWN, role_reason=reason, confidence=None)
 
 
 def _plane(stack: Stack) -> int:

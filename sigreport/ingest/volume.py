@@ -22,6 +22,7 @@ from sigreport import limits
 from sigreport.errors import InputError
 from sigreport.ingest.attributes import (
     MULTIFRAME_CLASSES,
+    PHILIPS_TAGS,
     Scaling,
     _float,
     _str,
@@ -57,7 +58,10 @@ _LOAD_TAGS = [
 ]  # fmt: skip
 
 
-_LOAD_TAG_SET = frozenset(t for t in (tag_for_keyword(k) for k in _LOAD_TAGS) if t is not None)
+# The vendor's private scale (attributes.philips_scale) is part of the scaling.
+_LOAD_TAG_SET = frozenset(
+    [t for t in (tag_for_keyword(k) for k in _LOAD_TAGS) if t is not None] + PHILIPS_TAGS
+)
 _NATIVE = (IMPLICIT_VR_LE, EXPLICIT_VR_LE)
 
 
@@ -143,7 +147,7 @@ def _where(stack: Stack, path: Path, study_dir: Path | None) -> str:
 
 def _read(path: Path, where: str) -> Dataset:
     try:
-        return pydicom.dcmread(path, specific_tags=_LOAD_TAGS)
+        return pydicom.dcmread(path, specific_tags=sorted(_LOAD_TAG_SET))
     except Exception as exc:  # the file changed or broke since it was indexed
         raise InputError(f"{where}: cannot be read: {exc}") from None
 
