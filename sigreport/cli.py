@@ -261,10 +261,19 @@ def report(
     if push and dicomweb is None:
         raise _fail("--push needs --dicomweb URL --study-uid UID")
     if dicomweb is not None:
-        if prior is not None or prior_case is not None:
-            raise _fail("--prior with --dicomweb is not supported: give the prior as a folder")
+        # The prior study is a folder (as in a batch worklist); only the current study is read
+        # from the archive.
         _report_archive(
-            case, out, dicomweb, str(study_uid), register, force, site_lexicon, push=push
+            case,
+            out,
+            dicomweb,
+            str(study_uid),
+            register,
+            force,
+            site_lexicon,
+            push=push,
+            prior=prior,
+            prior_case=prior_case,
         )
         return
     try:
@@ -406,6 +415,8 @@ def _report_archive(
     site_lexicon: Path | None,
     *,
     push: bool,
+    prior: Path | None = None,
+    prior_case: Path | None = None,
 ) -> None:
     from sigreport.archive import report_from_archive
 
@@ -421,6 +432,8 @@ def _report_archive(
                 site_lexicon=site_lexicon,
                 progress=progress,
                 push=push,
+                prior_study=prior,
+                prior_case=prior_case,
             )
     except InputError as exc:
         raise _fail(str(exc)) from None

@@ -260,3 +260,41 @@ def test_an_unreachable_archive_fails_its_case(studies, tmp_path, monkeypatch):
     summary = run_case(entry, str(tmp_path / "out"))
     assert summary["status"] == "failed"
     assert summary["reason"].startswith("cannot reach the archive at http://127.0.0.1:9/dicom-web")
+
+
+def test_ctrl_c_leaves_no_private_folder_and_no_partial_case(
+    orthanc, studies, tmp_path, monkeypatch
+):
+    """Stopped after the first case: the cancelled cases' folders and the batch's private
+    folder are gone, as is every half-written case folder."""
+    from sigreport.batch import Worklist, run_batch
+
+    _root, made, uids = studies
+    monkeypatch.setenv("SIGREPORT_DICOMWEB_USER", orthanc.user)
+    monkeypatch.setenv("SIGREPORT_DICOMWEB_PASSWORD", orthanc.password)
+    temp_root = tmp_path / "tmp"
+    temp_root.mkdir()
+    monkeypatch.setattr(tempfile, "tempdir", str(temp_root))
+    cases = tuple(
+        CaseEntry(
+            id=f"web-{k}",
+            study=None,
+            case=made[name].case_path,
+            dicomweb=orthanc.url,
+            study_uid=uids[name],
+        )
+        for k, name in enumerate(("a", "b", "a"))
+    )
+    worklist = Worklist(path=tmp_path / "worklist.toml", title=None, cases=cases)
+
+    def interrupt(summary: dict) -> None:
+        raise KeyboardInterrupt  # as if Ctrl-C arrived while waiting for the next case
+
+    result = run_batch(worklist, tmp_path / "out", workers=1, on_result=interrupt)
+    assert result.interrupted
+    assert [c["status"] for c in result.cases].count("cancelled") == 2
+    assert not [p for p in temp_root.rglob("sigreport-*")]
+    for path in (tmp_path / "out").iterdir():
+        assert not path.name.startswith("."), path
+        if path.is_dir():
+            assert (path / "findings.json").is_file() and (path / "sr.dcm").is_file()
