@@ -121,7 +121,9 @@ def load_worklist(path: Path | str, *, dicomweb: str | None = None) -> Worklist:
 
         problem = url_problem(dicomweb)
         if problem:
-            problems.append(f"--dicomweb {dicomweb!r}: {problem}")
+            # A URL with a password in it is not repeated.
+            shown = "" if "@" in dicomweb else f" {dicomweb!r}"
+            problems.append(f"--dicomweb{shown}: {problem}")
             dicomweb = None
     for k, entry in enumerate(entries):
         case, errors = _entry(entry, k, base, seen, dicomweb)
