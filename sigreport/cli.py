@@ -261,10 +261,19 @@ def report(
     if push and dicomweb is None:
         raise _fail("--push needs --dicomweb URL --study-uid UID")
     if dicomweb is not None:
-        if prior is not None or prior_case is not None:
-            raise _fail("--prior with --dicomweb is not supported: give the prior as a folder")
+        # The prior study is a folder (as in a batch worklist); only the current study is read
+        # from the archive.
         _report_archive(
-            case, out, dicomweb, str(study_uid), register, force, site_lexicon, push=push
+            case,
+            out,
+            dicomweb,
+            str(study_uid),
+            register,
+            force,
+            site_lexicon,
+            push=push,
+            prior=prior,
+            prior_case=prior_case,
         )
         return
     try:
@@ -406,6 +415,8 @@ def _report_archive(
     site_lexicon: Path | None,
     *,
     push: bool,
+    prior: Path | None = None,
+    prior_case: Path | None = None,
 ) -> None:
     from sigreport.archive import report_from_archive
 
@@ -421,6 +432,8 @@ def _report_archive(
                 site_lexicon=site_lexicon,
                 progress=progress,
                 push=push,
+                prior_study=prior,
+                prior_case=prior_case,
             )
     except InputError as exc:
         raise _fail(str(exc)) from None
@@ -436,7 +449,11 @@ def _report_archive(
 @app.command()
 def batch(
     worklist: Annotated[
-        Path, typer.Argument(help="The worklist (TOML): one [[case]] with id, study, case.")
+        Path,
+        typer.Argument(
+            help="The worklist (TOML): one [[case]] with id, case, and study (a folder) or "
+            "study_uid (and dicomweb)."
+        ),
     ],
     out: Annotated[
         Path,
@@ -470,6 +487,22 @@ def batch(
         bool, typer.Option("--force", help="Replace case folders that exist.")
     ] = False,
     site_lexicon: LexiconOption = None,
+    dicomweb: Annotated[
+        str | None,
+        typer.Option(
+            "--dicomweb",
+            help="The DICOMweb service of cases that give study_uid without dicomweb "
+            "(credentials from SIGREPORT_DICOMWEB_USER / SIGREPORT_DICOMWEB_PASSWORD or "
+            "SIGREPORT_DICOMWEB_TOKEN_FILE, in every worker's environment).",
+            show_default=False,
+        ),
+    ] = None,
+    push: Annotated[
+        bool,
+        typer.Option(
+            "--push", help="Store the sr.dcm of each archive case in its archive (STOW-RS)."
+        ),
+    ] = False,
 ) -> None:
     """Run every case of a worklist on Dask; write OUTDIR/<id>/, index.html and summary.csv.
 
@@ -479,7 +512,12 @@ def batch(
     from sigreport.batch import load_worklist, run_batch
 
     try:
-        entries = load_worklist(worklist)
+        entries = load_worklist(worklist, dicomweb=dicomweb)
+        if push and not any(e.study_uid is not None for e in entries.cases):
+            raise InputError(
+                "--push stores the SR of cases read from an archive; this worklist has none "
+                "(give study_uid, and dicomweb or --dicomweb)"
+            )
         with _batch_progress(len(entries.cases)) as (on_start, on_result):
             result = run_batch(
                 entries,
@@ -489,6 +527,7 @@ def batch(
                 register=register,
                 force=force,
                 site_lexicon=site_lexicon,
+                push=push,
                 on_result=on_result,
                 on_start=on_start,
             )
@@ -501,6 +540,8 @@ def batch(
     for case in result.cases:
         if case["status"] != "done":
             _say(f"  {case['status']} {case['id']}: {case['reason']}")
+        if case.get("pushed"):
+            _say(f"  archive {case['id']}: {case['pushed']}")
     typer.echo(terminal_text(str(result.index_html)))
     if result.interrupted:
         raise typer.Exit(130)

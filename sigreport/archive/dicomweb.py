@@ -155,16 +155,11 @@ class Archive:
         from dicomweb_client.api import DICOMwebClient
 
         parts = urlsplit(url)
-        if parts.scheme not in ("http", "https") or not parts.hostname:
-            raise InputError(
-                f"--dicomweb {url!r}: not an http(s) URL of a DICOMweb service "
-                "(e.g. https://pacs.example.org/dicom-web)"
-            )
-        if parts.username or parts.password:
-            raise InputError(
-                f"--dicomweb: credentials do not belong in the URL; set {USER_ENV} and "
-                f"{PASSWORD_ENV} or {TOKEN_FILE_ENV}"
-            )
+        problem = url_problem(url)
+        if problem:
+            # The URL itself is not repeated when it carries a password.
+            shown = "" if parts.username or parts.password else f" {url!r}"
+            raise InputError(f"--dicomweb{shown}: {problem}")
         self.url = url.rstrip("/")
         self.credentials = credentials if credentials is not None else Credentials.from_env()
         self.timeout_s = timeout_s
@@ -343,6 +338,25 @@ class Archive:
         if status is not None and status >= 500:
             return f"{self.url}: {what}: the archive failed (HTTP {status})"
         return f"{self.url}: {what}: HTTP {status}"
+
+
+def url_problem(url: str) -> str | None:
+    """Why ``url`` cannot be a DICOMweb service root, or None when it can: an http(s) URL with
+    a host name and no credentials in it (they come from the environment, never from text that
+    lands in shell histories, worklists and logs)."""
+    try:
+        parts = urlsplit(url)
+        hostname = parts.hostname
+    except ValueError as exc:
+        return f"not a URL ({exc})"
+    if parts.scheme not in ("http", "https") or not hostname:
+        return "not an http(s) URL of a DICOMweb service (e.g. https://pacs.example.org/dicom-web)"
+    if parts.username or parts.password:
+        return (
+            f"credentials do not belong in the URL; set {USER_ENV} and {PASSWORD_ENV} or "
+            f"{TOKEN_FILE_ENV}"
+        )
+    return None
 
 
 def _no_bulk_data(uri: str) -> bytes | None:

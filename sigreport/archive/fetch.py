@@ -108,10 +108,15 @@ def read_study(
     )
 
 
-def _check_uid(uid: str) -> str:
+def is_uid(text: str) -> bool:
     """A UID is digits and dots, at most 64 characters (PS3.5 9.1)."""
+    uid = text.strip()
+    return bool(uid) and len(uid) <= 64 and all(c.isdigit() or c == "." for c in uid)
+
+
+def _check_uid(uid: str) -> str:
     uid = uid.strip()
-    if not uid or len(uid) > 64 or not all(c.isdigit() or c == "." for c in uid):
+    if not is_uid(uid):
         raise InputError(f"--study-uid {uid!r} is not a DICOM UID (digits and dots, PS3.5 9.1)")
     return uid
 
@@ -234,11 +239,17 @@ def _merge(remote: StudyIndex, local: StudyIndex, measured: Mapping[str, Stack])
 
 
 @contextlib.contextmanager
-def private_folder(prefix: str = "sigreport-archive-") -> Iterator[Path]:
+def private_folder(
+    prefix: str = "sigreport-archive-", *, parent: Path | str | None = None
+) -> Iterator[Path]:
     """A temporary folder only the user can read (mode 0700), removed when the block ends,
     whether it ends normally, by an error, by Ctrl-C (KeyboardInterrupt) or by SIGTERM (turned
-    into SystemExit while the block runs in the main thread)."""
-    folder = Path(tempfile.mkdtemp(prefix=prefix))
+    into SystemExit while the block runs in the main thread).
+
+    ``parent`` is the folder to create it in (default: the system's temporary folder); a batch
+    gives each case's folder inside its own private folder, so that whatever a stopped worker
+    leaves behind goes with it."""
+    folder = Path(tempfile.mkdtemp(prefix=prefix, dir=parent))
     os.chmod(folder, 0o700)
     previous = None
     in_main = threading.current_thread() is threading.main_thread()
@@ -278,10 +289,17 @@ def report_from_archive(
     progress: Progress | None = None,
     push: bool = False,
     archive: Archive | None = None,
+    prior_study: Path | None = None,
+    prior_case: Path | None = None,
+    temp_parent: Path | str | None = None,
 ) -> ArchiveReport:
     """``report --dicomweb URL --study-uid UID``: fetch what the case needs into a private
     temporary folder, run the report on it, remove the folder, and with ``push`` store sr.dcm
     in the archive (STOW-RS).
+
+    ``prior_study`` / ``prior_case`` (a folder) are passed to ``run_report``; ``temp_parent`` is
+    where the private folder is made (``private_folder``). A batch case calls this with its
+    worklist entry.
 
     Raises
     ------
@@ -299,7 +317,7 @@ def report_from_archive(
     if out_dir.exists() and not force:
         raise InputError(f"{out_dir} exists; use --force to replace it")
     archive = archive if archive is not None else Archive(url)
-    with private_folder() as folder:
+    with private_folder(parent=temp_parent) as folder:
         fetched = fetch_needed_series(
             archive,
             study_uid,
@@ -322,6 +340,8 @@ def report_from_archive(
             site_lexicon=site_lexicon,
             progress=progress,
             study_index=fetched.index,
+            prior_study=prior_study,
+            prior_case=prior_case,
         )
     stored = None
     if push:

@@ -1,15 +1,22 @@
 """Every case of a worklist on Dask (docs/usage.md, ``sigreport batch``).
 
 Each case is one task: it reads its study where it is (a folder the worker can see: local disk
-on this machine, shared storage on a cluster), writes its own ``OUTDIR/<id>/`` through
-:func:`sigreport.pipeline.run_report` (atomic: a complete folder or none) and returns a small
+on this machine, shared storage on a cluster) or fetches the series it needs from a DICOMweb
+archive into a private temporary folder of its own (:func:`sigreport.archive.report_from_archive`),
+writes its own ``OUTDIR/<id>/`` through :func:`sigreport.pipeline.run_report` (atomic: a
+complete folder or none), with ``push`` stores its sr.dcm in that archive, and returns a small
 summary dict for the board sheet. A failing case never stops the others: its reason is in its
 summary. Nothing here assumes one machine, except that every worker sees the study folders and
 OUTDIR at the same paths.
+
+Archive credentials never travel with a task: each worker reads them from its own environment
+(``SIGREPORT_DICOMWEB_*``, docs/usage.md); the workers of the default local cluster are this
+process's children and inherit it.
 """
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import os
 import re
@@ -106,6 +113,7 @@ def case_summary(
         "has_prior": "prior" in findings,
         "qc_warnings": warnings,
         "report": f"{case_id}/report.html",
+        "pushed": "",
     }
 
 
@@ -124,6 +132,7 @@ def failed_summary(case_id: str, reason: str, *, status: str = FAILED) -> dict[s
         "has_prior": False,
         "qc_warnings": [],
         "report": None,
+        "pushed": "",
     }
 
 
@@ -134,37 +143,89 @@ def run_case(
     register: bool | None = None,
     force: bool = False,
     site_lexicon: str | None = None,
+    push: bool = False,
+    temp_parent: str | None = None,
 ) -> dict[str, Any]:
     """One task: ``run_report`` on one case into ``out_dir/<id>``; never raises.
+
+    A case whose study is in an archive (``entry.study_uid``) fetches only the series it needs
+    into a private temporary folder (inside ``temp_parent`` when given), removed when the case
+    ends however it ends; the credentials come from this process's environment. With ``push``
+    its sr.dcm is then stored in that archive (STOW-RS); a folder case is never pushed.
 
     Returns
     -------
     dict
-        :func:`case_summary` when the report was written; else :func:`failed_summary` with the
-        reason (an input problem's message, or ``internal error`` and, under ``traceback``, the
-        traceback to keep in ``OUTDIR/logs``).
+        :func:`case_summary` when the report was written (``pushed``: the archive's answer);
+        else :func:`failed_summary` with the reason (an input problem's message, such as the
+        archive's refusal, or ``internal error`` and, under ``traceback``, the traceback to
+        keep in ``OUTDIR/logs``). A report written but refused by the archive is a failed
+        case that keeps its ``report`` link.
     """
     from sigreport.pipeline import run_report
 
     site = Path(site_lexicon) if site_lexicon is not None else None
+    target = Path(out_dir) / entry.id
     try:
-        run = run_report(
-            entry.case,
-            Path(out_dir) / entry.id,
-            study_dir=entry.study,
-            register=register,
-            force=force,
-            site_lexicon=site,
-            prior_study=entry.prior_study,
-            prior_case=entry.prior_case,
-        )
-        return case_summary(entry.id, run.findings, site)
+        if entry.study_uid is None:
+            run = run_report(
+                entry.case,
+                target,
+                study_dir=entry.study,
+                register=register,
+                force=force,
+                site_lexicon=site,
+                prior_study=entry.prior_study,
+                prior_case=entry.prior_case,
+            )
+            return case_summary(entry.id, run.findings, site)
+        return _run_archive_case(entry, target, register, force, site, push, temp_parent)
     except InputError as exc:
         return failed_summary(entry.id, str(exc))
     except Exception as exc:  # a bug in one case must not stop the others
         summary = failed_summary(entry.id, f"internal error: {exc!r}")
         summary["traceback"] = traceback.format_exc()
         return summary
+
+
+def _run_archive_case(
+    entry: CaseEntry,
+    target: Path,
+    register: bool | None,
+    force: bool,
+    site: Path | None,
+    push: bool,
+    temp_parent: str | None,
+) -> dict[str, Any]:
+    from sigreport.archive import Archive, report_from_archive
+
+    assert entry.dicomweb is not None and entry.study_uid is not None
+    archive = Archive(entry.dicomweb)
+    done = report_from_archive(
+        entry.case,
+        target,
+        url=entry.dicomweb,
+        study_uid=entry.study_uid,
+        register=register,
+        force=force,
+        site_lexicon=site,
+        archive=archive,
+        prior_study=entry.prior_study,
+        prior_case=entry.prior_case,
+        temp_parent=temp_parent,
+    )
+    summary = case_summary(entry.id, done.run.findings, site)
+    if push:
+        try:
+            stored = archive.store(target / "sr.dcm")
+        except InputError as exc:
+            summary.update(
+                status=FAILED,
+                reason=f"the report is in {entry.id}/, but sr.dcm was not stored: {exc}",
+            )
+            return summary
+        summary["pushed"] = "; ".join(stored.lines())
+    return summary
 
 
 def check_out_dir(worklist: Worklist, out_dir: Path, *, force: bool = False) -> None:
@@ -210,6 +271,7 @@ def run_batch(
     register: bool | None = None,
     force: bool = False,
     site_lexicon: Path | None = None,
+    push: bool = False,
     on_result: OnResult | None = None,
     on_start: Callable[[int], None] | None = None,
 ) -> BatchResult:
@@ -230,6 +292,8 @@ def run_batch(
         number of cores.
     register, force, site_lexicon
         As for ``report``, for every case.
+    push
+        Store each archive case's sr.dcm in its archive (STOW-RS); folder cases are not pushed.
     on_result
         Called in this process with each case's summary as it arrives.
     on_start
@@ -245,10 +309,10 @@ def run_batch(
     ------
     InputError
         A case folder exists without ``force``, OUTDIR is inside a study, the scheduler cannot
-        be reached, ``workers`` < 1, or ``workers`` is given with ``scheduler``.
+        be reached, ``workers`` < 1, or ``workers`` is given with ``scheduler``; on a local
+        cluster with archive cases, archive credentials that cannot be used (a token file that
+        cannot be read, a user without a password).
     """
-    from distributed import as_completed
-
     out_dir = Path(out_dir)
     check_out_dir(worklist, out_dir, force=force)
     if workers is not None and workers < 1:
@@ -258,11 +322,79 @@ def run_batch(
             "--workers sets the size of the local cluster; with --scheduler the scheduler's "
             "own workers run the cases"
         )
+    from_archive = any(entry.study_uid is not None for entry in worklist.cases)
+    if from_archive and scheduler is None:
+        from sigreport.archive import Credentials
+
+        # The local workers read the same environment: a misconfiguration is one message
+        # before any work, not one failure per case.
+        Credentials.from_env()
     out_dir.mkdir(parents=True, exist_ok=True)
     site = str(site_lexicon) if site_lexicon is not None else None
     results: dict[str, dict[str, Any]] = {}
+    with contextlib.ExitStack() as stack:
+        # Local workers make each archive case's private folder inside one private folder of
+        # the batch, removed when the batch ends even if a stopped worker could not clean up;
+        # a remote scheduler's workers use their own temporary folder.
+        temp_parent = None
+        if from_archive and scheduler is None:
+            from sigreport.archive import private_folder
+
+            temp_parent = str(stack.enter_context(private_folder("sigreport-batch-")))
+        client, cluster = _connect(scheduler, workers)
+        interrupted = _run_cases(
+            client,
+            cluster,
+            worklist,
+            out_dir,
+            results,
+            register=register,
+            force=force,
+            site=site,
+            push=push,
+            temp_parent=temp_parent,
+            on_result=on_result,
+            on_start=on_start,
+        )
+    summaries = tuple(
+        results.get(e.id)
+        or failed_summary(e.id, "stopped (Ctrl-C) before it finished", status=CANCELLED)
+        for e in worklist.cases
+    )
+    from sigreport.batch.sheet import write_sheet
+
+    index_html, summary_csv = write_sheet(
+        out_dir, summaries, title=worklist.title, site_lexicon=site_lexicon
+    )
+    return BatchResult(
+        out_dir=out_dir,
+        index_html=index_html,
+        summary_csv=summary_csv,
+        cases=summaries,
+        interrupted=interrupted,
+    )
+
+
+def _run_cases(
+    client: Any,
+    cluster: Any,
+    worklist: Worklist,
+    out_dir: Path,
+    results: dict[str, dict[str, Any]],
+    *,
+    register: bool | None,
+    force: bool,
+    site: str | None,
+    push: bool,
+    temp_parent: str | None,
+    on_result: OnResult | None,
+    on_start: Callable[[int], None] | None,
+) -> bool:
+    """Submit every case, collect the summaries into ``results``; True when Ctrl-C stopped
+    the run. The client and the cluster are closed on the way out."""
+    from distributed import as_completed
+
     interrupted = False
-    client, cluster = _connect(scheduler, workers)
     futures: dict[Any, CaseEntry] = {}
     try:
         try:
@@ -276,6 +408,8 @@ def run_batch(
                     register=register,
                     force=force,
                     site_lexicon=site,
+                    push=push,
+                    temp_parent=temp_parent,
                     key=f"sigreport-case-{entry.id}-{uuid.uuid4().hex}",
                     pure=False,
                 )
@@ -297,23 +431,7 @@ def run_batch(
         if cluster is not None:
             cluster.close()
         _sweep_partials(out_dir, worklist.cases)
-    summaries = tuple(
-        results.get(e.id)
-        or failed_summary(e.id, "stopped (Ctrl-C) before it finished", status=CANCELLED)
-        for e in worklist.cases
-    )
-    from sigreport.batch.sheet import write_sheet
-
-    index_html, summary_csv = write_sheet(
-        out_dir, summaries, title=worklist.title, site_lexicon=site_lexicon
-    )
-    return BatchResult(
-        out_dir=out_dir,
-        index_html=index_html,
-        summary_csv=summary_csv,
-        cases=summaries,
-        interrupted=interrupted,
-    )
+    return interrupted
 
 
 def _connect(scheduler: str | None, workers: int | None) -> tuple[Any, Any]:

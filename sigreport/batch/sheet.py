@@ -26,7 +26,7 @@ INDEX_HTML = "index.html"
 SUMMARY_CSV = "summary.csv"
 SUMMARY_COLUMNS: tuple[str, ...] = (
     "id", "status", "reason", "patient_name", "patient_id", "study_date", "lesions",
-    "behaviour", "change", "qc_warnings", "qc_codes", "report",
+    "behaviour", "change", "qc_warnings", "qc_codes", "report", "pushed",
 )  # fmt: skip
 
 
@@ -50,6 +50,7 @@ def summary_rows(cases: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]]:
                 "qc_warnings": len(warnings) if case["status"] == "done" else None,
                 "qc_codes": " ".join(w.split(":", 1)[0] for w in warnings),
                 "report": case.get("report") or "",
+                "pushed": case.get("pushed") or "",
             }
         )
     return rows
@@ -84,6 +85,7 @@ def render_index(
                 "behaviour": list(case.get("behaviour") or []),
                 "change": list(case.get("change") or []),
                 "qc_warnings": list(case.get("qc_warnings") or []),
+                "pushed": case.get("pushed") or "",
             }
         )
     env = environment(site_lexicon, autoescape=True)

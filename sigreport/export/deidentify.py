@@ -21,13 +21,14 @@ from pydicom.uid import generate_uid
 
 from sigreport import __version__
 from sigreport.export.profile import (
-    BASIC_PROFILE,
     BASIC_PROFILE_CODE,
     CLEAN_STRUCTURED_CONTENT_CODE,
+    DATE_VRS,
     DEIDENTIFYING_EQUIPMENT_CODE,
     DICOM_UID_ROOT,
     DUMMY,
-    NON_IDENTIFYING_UID_KEYWORDS,
+    TEXT_VRS,
+    action_for,
 )
 
 REMOVED = "[removed]"
@@ -40,15 +41,6 @@ DEIDENTIFICATION_METHOD = [
 # Identifiers shorter than this are removed from the fields that hold them but not searched
 # for in free text: "1" (a StudyID) or "T1" (an accession number) occur in ordinary wording.
 MIN_TEXT_LENGTH = 4
-# Coded entries are the standard's and the tool's own vocabulary, never patient text.
-_CODE_KEYWORDS = frozenset(
-    {
-        "CodeValue", "CodingSchemeDesignator", "CodingSchemeVersion", "CodeMeaning",
-        "LongCodeValue", "URNCodeValue", "MappingResource", "ContextIdentifier",
-        "TemplateIdentifier", "CodingSchemeName", "CodingSchemeResponsibleOrganization",
-    }
-)  # fmt: skip
-_ACTIONS = {keyword: applied for keyword, _basic, applied in BASIC_PROFILE}
 _UID = re.compile(r"(?<![0-9.])[0-2](?:\.(?:0|[1-9][0-9]*))+(?![0-9.])")
 
 
@@ -186,14 +178,15 @@ def _all(ds: Dataset, keyword: str) -> Iterable[DataElement]:
 
 
 def deidentify_sr(sr: Dataset, uids: UidMap, identifiers: Identifiers) -> Dataset:
-    """A copy of ``sr`` with the Basic Profile applied (``profile.BASIC_PROFILE``), every
-    private attribute removed, every identifying UID replaced through ``uids``, the content
-    tree's text cleaned of ``identifiers``, and the de-identification attributes set (PS3.3
-    C.7.1.1 Patient Identification: Patient Identity Removed, De-identification Method and its
-    Code Sequence with PS3.16 CID 7050 codes).
+    """A copy of ``sr`` with the Basic Profile and the Clean Structured Content Option applied
+    to every attribute at every level of nesting (``profile.action_for``: the action of its row
+    of PS3.15 Table E.1-1, private attributes removed, identifying UIDs replaced through
+    ``uids``, the content tree's text cleaned of ``identifiers``), and the de-identification
+    attributes set: PS3.3 C.7.1.1 Patient Identity Removed, De-identification Method and its
+    Code Sequence (PS3.16 CID 7050), and an item of the Contributing Equipment Sequence for the
+    de-identifying software (PS3.16 CID 7005, 109104).
     """
     out = _copy(sr)
-    out.remove_private_tags()
     _apply(out, uids, identifiers)
     if not hasattr(out, "file_meta"):
         out.file_meta = FileMetaDataset()
@@ -208,9 +201,9 @@ def deidentify_sr(sr: Dataset, uids: UidMap, identifiers: Identifiers) -> Datase
     equipment = Dataset()
     equipment.Manufacturer = "sigreport"
     equipment.SoftwareVersions = __version__
-    equipment.ContributionDescription = "de-identified export of a sigreport report folder"
     equipment.PurposeOfReferenceCodeSequence = Sequence([_code(*DEIDENTIFYING_EQUIPMENT_CODE)])
-    out.ContributingEquipmentSequence = Sequence([equipment])
+    previous = list(out.get("ContributingEquipmentSequence") or [])
+    out.ContributingEquipmentSequence = Sequence([*previous, equipment])
     return out
 
 
@@ -229,51 +222,35 @@ def _code(value: str, scheme: str, meaning: str) -> Dataset:
 
 
 def _apply(ds: Dataset, uids: UidMap, identifiers: Identifiers) -> None:
+    """Apply ``profile.action_for`` to every attribute of ``ds``, into sequences' items."""
     for element in list(ds):
-        keyword = element.keyword
-        action = _ACTIONS.get(keyword)
-        if element.tag.is_private or (element.tag.group & 0xFF00) in (0x5000, 0x6000):
-            del ds[element.tag]  # private attributes, curves and overlays (PS3.15 E.1.1)
-            continue
+        action = action_for(element.tag, element.keyword, element.VR)
         if action == "X":
             del ds[element.tag]
-            continue
-        if action == "Z":
+        elif action == "Z":
             element.value = Sequence() if element.VR == "SQ" else ""
-            continue
-        if action == "D":
+        elif action == "D":
             if element.VR == "SQ":
+                # A dummy sequence would have to invent its items; none of the table's D
+                # sequences (verifying observer, person identification) is in our SR.
                 del ds[element.tag]
             else:
                 element.value = DUMMY.get(element.VR, "REMOVED")
-            continue
-        if element.VR == "SQ":
+        elif element.VR == "SQ":  # K, C (the content tree) or U* (a kept reference)
             for item in element.value:
                 _apply(item, uids, identifiers)
-            continue
-        if element.VR == "UI":
-            if keyword not in NON_IDENTIFYING_UID_KEYWORDS and element.value:
+        elif action == "U" or (element.VR == "UI" and action.startswith("U")):
+            if element.value:
                 values = element.value if element.VM > 1 else [element.value]
                 new = [uids(str(v)) for v in values]
                 element.value = new if element.VM > 1 else new[0]
-            continue
-        if element.VR in ("DA", "DT", "TM"):
-            # Dates and times the table does not list are longitudinal information all the
-            # same (PS3.15 E.3.6 is the option that would keep them; not used): removed.
-            del ds[element.tag]
-            continue
-        if element.VR in ("PN",):
-            element.value = ""
-            continue
-        if (
-            element.VR in ("LO", "SH", "ST", "LT", "UT", "UC")
-            and element.value
-            and keyword not in _CODE_KEYWORDS
-        ):
+        elif action == "C" and element.VR in TEXT_VRS and element.value:
             if element.VM > 1:
                 element.value = [identifiers.clean(str(v)) for v in element.value]
             else:
                 element.value = identifiers.clean(str(element.value))
+        elif action == "C" and element.VR in DATE_VRS:
+            element.value = DUMMY[element.VR]
 
 
 # --------------------------------------------------------------------------------------------

@@ -245,3 +245,35 @@ def test_archive_names_are_kept_out_of_local_paths():
 
     assert Path(SERIES_FOLDER.format(3)).name == "series-003"
     assert INSTANCE_FILE.format(12) == "IM00012.dcm"
+
+
+def test_a_403_fails_a_batch_case_with_the_archives_message(stub, monkeypatch, tmp_path):
+    """A batch case as its worker runs it: the refusal is the case's reason, not an exception,
+    and the private folder made inside the batch's is gone."""
+    from sigreport.batch import run_case
+    from sigreport.batch.worklist import CaseEntry
+
+    url, script = stub
+    script.statuses = [403]
+    monkeypatch.setenv(USER_ENV, "reader")
+    monkeypatch.setenv(PASSWORD_ENV, "s3cret")
+    monkeypatch.delenv(TOKEN_FILE_ENV, raising=False)
+    case = tmp_path / "case.toml"
+    case.write_text(
+        '[[roi]]\nid = "L1"\nkind = "lesion"\nshape = "sphere"\n'
+        "center_mm = [0.0, 0.0, 0.0]\nradius_mm = 5.0\n"
+        '[[roi]]\nid = "R1"\nkind = "reference"\ntissue = "white matter"\nshape = "sphere"\n'
+        "center_mm = [20.0, 0.0, 0.0]\nradius_mm = 5.0\n"
+    )
+    parent = tmp_path / "tmp"
+    parent.mkdir()
+    entry = CaseEntry(id="c1", study=None, case=case, dicomweb=url, study_uid=STUDY)
+    summary = run_case(entry, str(tmp_path / "out"), temp_parent=str(parent))
+    assert summary["status"] == "failed"
+    assert summary["reason"] == (
+        f"{url}: searching the series of study {STUDY}: not allowed for this user "
+        "(HTTP 403 Forbidden)"
+    )
+    assert len(script.seen) == 1  # not retried
+    assert list(parent.iterdir()) == []
+    assert "s3cret" not in repr(summary)

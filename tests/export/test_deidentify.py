@@ -126,3 +126,113 @@ def test_a_numeric_identifier_is_not_found_inside_a_measured_value():
     assert find_identifiers({"t.csv": b"L1,T2,1571.8"}, ids, {}) == []
     assert find_identifiers({"t.txt": b"patient 1571 seen"}, ids, {}) == [("t.txt", "patient id")]
     assert ids.clean("seen by doe^jane.") == "seen by [removed]."
+
+
+def test_the_shipped_table_pairs_each_tag_with_the_name_pydicoms_dictionary_gives():
+    """The copy of PS3.15 Table E.1-1 against an outside source: pydicom's data dictionary
+    (PS3.6) names each tag as the table does, so no row was shifted in transcription."""
+    from pydicom.datadict import dictionary_description
+
+    from sigreport.export.profile import TABLE
+
+    assert len(TABLE) == 460
+    assert len({row.tag for row in TABLE}) == len(TABLE)
+    # pydicom's dictionary writes "GenerationMode" as one word in these two names.
+    spelled = {0x300A067D, 0x300A067C}
+    for row in TABLE:
+        codes = set(row.basic.split("/"))
+        assert codes <= {"D", "Z", "X", "K", "C", "U", "U*"}, row
+        assert row.clean_structured_content in (None, "C"), row
+        value = row.tag_value
+        if value is None:
+            assert row.tag in ("(50XX,XXXX)", "(60XX,3000)", "(60XX,4000)", "(GGGG,EEEE)"), row
+            continue
+        if value in spelled:
+            continue
+        assert dictionary_description(value).lower() == row.name.lower(), row
+
+
+def test_compound_codes_are_resolved_by_the_attributes_type_in_the_sr():
+    from pydicom.tag import Tag
+
+    from sigreport.export.profile import ACTIONS_BY_TAG, action_for
+
+    def action(keyword: str) -> str:
+        from pydicom.datadict import dictionary_VR, tag_for_keyword
+
+        tag = tag_for_keyword(keyword)
+        return action_for(Tag(tag), keyword, dictionary_VR(tag))
+
+    assert action("ContentDate") == "D"  # Z/D, Type 1 (PS3.3 C.17.2)
+    assert action("ReferencedPerformedProcedureStepSequence") == "Z"  # X/Z/D, Type 2
+    assert action("InstitutionName") == "X"  # X/Z/D, Type 3
+    assert action("AcquisitionDateTime") == "X"  # X/Z/D, not in the SR IOD
+    assert action("ContentSequence") == "C"  # D, cleaned under the option
+    assert action("PatientName") == "Z" and action("StudyInstanceUID") == "U"
+    # Not rows: the rule by VR for what a source header may carry.
+    assert action("PatientSpeciesDescription") == "C"  # LO: free text, cleaned
+    assert action("ReferencedSOPClassUID") == "K"
+    assert action_for(Tag(0x00091010), "", "LO") == "X"  # private
+    assert action_for(Tag(0x60003000), "OverlayData", "OW") == "X"
+    assert len(ACTIONS_BY_TAG) == 456  # every row naming one tag
+
+
+def test_patient_and_study_attributes_a_source_header_carries_are_handled_by_the_table(
+    profile_checker,
+):
+    """highdicom copies the Patient, Clinical Trial Subject, General Study and Patient Study
+    modules of the source images into the SR (PS3.3 C.7.1.1, C.7.1.3, C.7.2.1, C.7.2.2): each
+    of their attributes a scanner may fill is handled as its row says."""
+    original = _sr()
+    original.PatientSex = "F"
+    original.OtherPatientIDs = "OLD-7781"
+    original.OtherPatientNames = "DOE^JANINE"
+    original.IssuerOfPatientID = "Example General MRN"
+    original.PatientBirthTime = "101500"
+    original.PatientAge = "064Y"
+    original.PatientSize = "1.62"
+    original.PatientWeight = "58"
+    original.EthnicGroup = "EXAMPLE"
+    original.PatientComments = "call Jane Doe's daughter"
+    original.AdditionalPatientHistory = "MRN-0042 seen before"
+    original.Occupation = "teacher"
+    original.PatientSexNeutered = "UNALTERED"
+    original.ResponsiblePerson = "DOE^JOHN"
+    original.PatientSpeciesDescription = "Homo sapiens"
+    original.ClinicalTrialSponsorName = "Example Sponsor"
+    original.ClinicalTrialSubjectID = "SUBJ-12"
+    original.ClinicalTrialSiteName = "Example General"
+    original.StudyTime = "093000"
+    original.StudyID = "S-1042"
+    original.AccessionNumber = "ACC-5521"
+    original.StudyDescription = "MR brain for Jane Doe"
+    original.ReferringPhysicianName = "HOUSE^GREGORY"
+    original.PhysiciansOfRecord = "HOUSE^GREGORY"
+    original.NameOfPhysiciansReadingStudy = "WILSON^JAMES"
+    original.ConsultingPhysicianName = "CUDDY^LISA"
+    original.AdmittingDiagnosesDescription = "headache"
+    original.ReasonForVisit = "headache"
+    original.ServiceEpisodeID = "EP-9"
+    original.InstitutionAddress = "1 Example Road"
+    original.ReferencedPatientSequence = Sequence([Dataset()])
+    original.ReferencedPatientSequence[0].ReferencedSOPInstanceUID = "1.2.826.0.1.3680043.8.498.99"
+    uids = UidMap()
+    ids = Identifiers.collect(original, {"study": {}})
+    out = deidentify_sr(original, uids, ids)
+    seen = profile_checker(original, out, [t for _what, t in ids.values])
+    assert seen[STUDY_UID] == out.StudyInstanceUID
+    # A few rows read off the table by eye (PS3.15 Table E.1-1, Basic Profile column).
+    assert out.PatientSex == "" and out.StudyTime == "" and out.StudyID == ""  # Z
+    assert out.ClinicalTrialSubjectID == "REMOVED"  # D
+    assert out.ClinicalTrialSiteName == ""  # Z
+    for removed in (
+        "OtherPatientIDs", "OtherPatientNames", "IssuerOfPatientID", "PatientBirthTime",
+        "PatientAge", "PatientSize", "PatientWeight", "EthnicGroup", "PatientComments",
+        "AdditionalPatientHistory", "Occupation", "PatientSexNeutered", "ResponsiblePerson",
+        "StudyDescription", "PhysiciansOfRecord", "NameOfPhysiciansReadingStudy",
+        "AdmittingDiagnosesDescription", "ReasonForVisit", "ServiceEpisodeID",
+        "InstitutionAddress", "ReferencedPatientSequence",
+    ):  # fmt: skip
+        assert removed not in out, removed
+    assert out.ConsultingPhysicianName == ""  # Z
+    assert out.PatientSpeciesDescription == "Homo sapiens"  # not a row: text, nothing to clean

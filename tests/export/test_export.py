@@ -120,9 +120,19 @@ def test_the_sr_carries_the_deidentification_attributes(made):
     assert sr.AccessionNumber == "" and sr.StudyDate == ""
     assert not [e for e in sr.iterall() if e.tag.is_private]
     assert sr.file_meta.MediaStorageSOPInstanceUID == sr.SOPInstanceUID
-    # The de-identifying equipment (PS3.16 CID 7005, 109104).
-    purpose = sr.ContributingEquipmentSequence[0].PurposeOfReferenceCodeSequence[0]
-    assert purpose.CodeValue == "109104"
+    # The de-identifying equipment (PS3.16 CID 7005, 109104) is added after the source's
+    # equipment items (acquisition 109101, processing 109102), which keep their purpose but
+    # lose what Table E.1-1 removes (Institution Name, Device Serial Number, Contribution
+    # Description) and their dates.
+    items = list(sr.ContributingEquipmentSequence)
+    purposes = [item.PurposeOfReferenceCodeSequence[0].CodeValue for item in items]
+    assert purposes[-1] == "109104" and purposes[:-1] == ["109101", "109102"]
+    for item in items:
+        for keyword in (
+            "InstitutionName", "DeviceSerialNumber", "ContributionDescription",
+            "ContributionDateTime",
+        ):  # fmt: skip
+            assert keyword not in item, keyword
 
 
 def test_highdicom_reads_the_same_measurement_groups_from_both_srs(made):
@@ -182,12 +192,20 @@ def test_the_deidentified_sr_passes_dciodvfy(made):
         if os.environ.get("CI"):
             pytest.fail("dciodvfy (Debian dicom3tools) is required when CI is set")
         pytest.skip("dciodvfy (Debian dicom3tools) is not installed")
-    result = subprocess.run(
-        [binary, str(made["export"] / "sr.dcm")], capture_output=True, text=True, timeout=60
-    )
-    output = result.stdout + result.stderr
-    assert "Comprehensive3DSR" in output
-    assert [line for line in output.splitlines() if line.startswith("Error")] == []
+
+    def lines(path: Path) -> set[str]:
+        result = subprocess.run([binary, str(path)], capture_output=True, text=True, timeout=60)
+        return set((result.stdout + result.stderr).splitlines())
+
+    before, after = lines(made["report"] / "sr.dcm"), lines(made["export"] / "sr.dcm")
+    assert "Comprehensive3DSR" in after
+    assert [line for line in after if line.startswith("Error")] == []
+    # The only new warnings: a DICOMDIR could not be indexed by the attributes the profile
+    # empties (Z: Patient ID, Study Date, Study Time, Study ID; Type 2 in the IOD).
+    prefix = "Warning - Missing attribute or value that would be needed to build DICOMDIR - "
+    assert after - before == {
+        prefix + name for name in ("Patient ID", "Study Date", "Study Time", "Study ID")
+    }
 
 
 def _digest(folder: Path) -> dict[str, str]:
@@ -257,3 +275,54 @@ def test_export_opens_no_network_connection(made, tmp_path, monkeypatch):
     monkeypatch.setattr(socket, "create_connection", refuse)
     export_report(made["report"], tmp_path / "out")
     assert (tmp_path / "out" / "sr.dcm").is_file()
+
+
+def _keywords(ds) -> set[str]:
+    return {e.keyword for e in ds.iterall() if e.keyword}
+
+
+def test_every_attribute_of_our_sr_is_a_row_of_table_e1_1_or_has_a_stated_rule(made):
+    """PS3.15 Table E.1-1 (shipped, sigreport/export/ps3_15_table_e1_1.tsv) or NOT_IN_TABLE
+    covers each attribute the report's SR holds, at every level; none is left to the
+    fallback by VR."""
+    from sigreport.export.profile import ACTIONS_BY_TAG, NOT_IN_TABLE
+
+    sr = pydicom.dcmread(made["report"] / "sr.dcm")
+    uncovered = sorted(
+        {
+            e.keyword
+            for e in sr.iterall()
+            if int(e.tag) not in ACTIONS_BY_TAG and e.keyword not in NOT_IN_TABLE
+        }
+    )
+    assert uncovered == []
+    # The rows our SR meets, as the table gives them (the copy's rows, not our code's):
+    # identifiers zeroed or replaced, the content tree cleaned.
+    assert {"PatientName", "PatientID", "StudyInstanceUID", "ContentSequence"} <= _keywords(sr)
+
+
+def test_every_attribute_is_handled_as_its_row_says_and_uids_map_one_to_one(made, profile_checker):
+    original = pydicom.dcmread(made["report"] / "sr.dcm")
+    out = pydicom.dcmread(made["export"] / "sr.dcm")
+    identifiers = sorted(_original_identifiers(made)) + [
+        str(e.value) for e in original.iterall() if e.keyword == "InstitutionName"
+    ]
+    uids = profile_checker(original, out, identifiers)
+    # Study, series, instance, frame of reference and tracking UIDs all replaced.
+    assert original.StudyInstanceUID in uids and original.SOPInstanceUID in uids
+    assert len(uids) > 10
+    # The same map in findings.json: every original UID it names has the SR's new UID.
+    before = json.loads((made["report"] / "findings.json").read_text())
+    after = json.loads((made["export"] / "findings.json").read_text())
+    assert after["study"]["study_instance_uid"] == uids[before["study"]["study_instance_uid"]]
+    pairs = [
+        (a["series_instance_uid"], b["series_instance_uid"])
+        for a, b in zip(before["series"], after["series"], strict=True)
+    ]
+    seen_in_sr = [(old, new) for old, new in pairs if old in uids]
+    assert seen_in_sr  # the measured series are referenced by the SR
+    assert all(uids[old] == new for old, new in seen_in_sr)
+    assert all(new != old and new.startswith("2.25.") for old, new in pairs)
+    # And in the text files: the series table and the page name the new UIDs only.
+    page = (made["export"] / "report.html").read_text()
+    assert uids[original.StudyInstanceUID] in page
