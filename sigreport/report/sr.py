@@ -277,11 +277,7 @@ def build_sr(
         observation_context=context,
         procedure_reported=codes.cid100.MultiparametricMRI,
         imaging_measurements=groups,
-        # The image library (TID 1600) describes each image by its top-level geometry; an
-        # Enhanced MR multi-frame file keeps that in functional groups, which highdicom's
-        # library entry does not read, so multi-frame sources are referenced by the
-        # measurements only.
-        referenced_images=_library_images(sources.datasets.values()) or None,
+        referenced_images=_library_images(library or []) or None,
     )
     # The cautions (and the warnings of the run) travel with the numbers: TEXT comments on the
     # report's root container (TID 1500 is extensible).
