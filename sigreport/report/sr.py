@@ -18,11 +18,14 @@ from typing import Any
 
 import highdicom as hd
 from pydicom import Dataset, dcmread
-from pydicom.charset import python_encoding
-from pydicom.dataelem import DataElement
+from pydicom.charset import convert_encodings, custom_encoders, default_encoding, python_encoding
+from pydicom.dataelem import DataElement, RawDataElement
 from pydicom.sequence import Sequence as DicomSequence
 from pydicom.sr.codedict import codes
 from pydicom.sr.coding import Code
+from pydicom.tag import BaseTag
+from pydicom.uid import ExplicitVRLittleEndian
+from pydicom.valuerep import AMBIGUOUS_VR
 
 from sigreport.model import InstanceRef, KeySlice, Stack
 from sigreport.report import sr_content
@@ -769,5 +772,70 @@ def _family_content(lesion: Mapping[str, Any]) -> tuple[list[Dataset], list[Data
 
 
 def write_sr(path: Path, sr: hd.sr.Comprehensive3DSR) -> None:
-    """Write the SR as a DICOM file (PS3.10, with file meta)."""
-    sr.save_as(path, enforce_file_format=True)
+    """Write the SR as a DICOM file (PS3.10, with file meta).
+
+    The measurement groups are encoded by :func:`sr_content.encode_items`, byte for byte as
+    pydicom would write them, when the document is in Explicit VR Little Endian with a simple
+    character set; pydicom writes everything else (and the whole document otherwise).
+    """
+    (_with_groups_encoded(sr) or sr).save_as(path, enforce_file_format=True)
+
+
+def _with_groups_encoded(sr: Dataset) -> Dataset | None:
+    """A stand-in for ``sr`` to write, sharing its elements, whose Imaging Measurements
+    container holds its Content Sequence already encoded (a raw element, which pydicom writes
+    as it is); None when the groups are left to pydicom. ``sr`` itself is not changed.
+
+    pydicom's writer resolves ambiguous VRs over the whole tree below any dataset it did not
+    read in the file's transfer syntax, and that walk would decode the raw element again: the
+    stand-in root and container are marked as read in Explicit VR Little Endian, which is
+    true of what they hold only when no element at their own level has an ambiguous VR
+    (checked; every other item is still walked by pydicom as it is written).
+    """
+    meta = getattr(sr, "file_meta", None)
+    if meta is None or meta.get("TransferSyntaxUID") != ExplicitVRLittleEndian:
+        return None
+    declared = sr.get("SpecificCharacterSet")
+    charset = convert_encodings(declared) if declared else default_encoding
+    names = [charset] if isinstance(charset, str) else list(charset)
+    if len(names) != 1 or names[0] in custom_encoders:
+        return None  # ISO 2022 code extensions: pydicom's encoder
+    items = sr.get("ContentSequence")
+    positions = [
+        i
+        for i, content in enumerate(items or ())
+        if content.get("ValueType") == "CONTAINER"
+        and content.ConceptNameCodeSequence[0].CodeValue == IMAGING_MEASUREMENTS.value
+    ]
+    if len(positions) != 1:
+        return None
+    container = items[positions[0]]
+    if _CONTENT_SEQUENCE not in container or any(
+        elem.VR in AMBIGUOUS_VR for ds in (sr, container) for elem in ds.elements()
+    ):
+        return None
+    try:
+        raw = sr_content.encode_items(container[_CONTENT_SEQUENCE].value, names[0])
+    except sr_content.NotEncodable:
+        return None
+    encoded = Dataset()
+    for elem in container.elements():
+        if elem.tag != _CONTENT_SEQUENCE:
+            encoded[elem.tag] = elem
+    encoded[_CONTENT_SEQUENCE] = RawDataElement(
+        BaseTag(_CONTENT_SEQUENCE), "SQ", len(raw), raw, 0, False, True
+    )
+    encoded.set_original_encoding(False, True, default_encoding)
+    root = Dataset()
+    for elem in sr.elements():
+        if elem.tag != _CONTENT_SEQUENCE:
+            root[elem.tag] = elem
+    root[_CONTENT_SEQUENCE] = DataElement(
+        _CONTENT_SEQUENCE,
+        "SQ",
+        DicomSequence([encoded if i == positions[0] else c for i, c in enumerate(items)]),
+    )
+    root.set_original_encoding(False, True, charset)
+    root.file_meta = meta
+    root.preamble = getattr(sr, "preamble", None)
+    return root

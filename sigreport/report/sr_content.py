@@ -15,10 +15,17 @@ Each dataset made here is marked as encoded in Explicit VR Little Endian
 (``Dataset.set_original_encoding``): it holds no element of ambiguous VR (the VRs are set
 explicitly below), so pydicom's writer need not walk it again to resolve such VRs for every
 level of nesting; the document's root, written in that transfer syntax, is still walked once.
+
+Writing the groups with pydicom costs about 10 microseconds per element (a demo SR has some
+14,000); :func:`encode_items` encodes such a tree directly in Explicit VR Little Endian (PS3.5
+7.1.2 and 7.5), byte for byte as pydicom's writer does (defined lengths, elements in tag order,
+values padded to even length), for the VRs this module writes; anything else is left to pydicom
+(:class:`NotEncodable`).
 """
 
 from __future__ import annotations
 
+import struct
 from collections.abc import Iterable, Sequence
 from functools import lru_cache
 from typing import Any
@@ -27,12 +34,15 @@ from pydicom import config
 from pydicom.charset import default_encoding
 from pydicom.dataelem import DataElement
 from pydicom.dataset import Dataset
+from pydicom.multival import MultiValue
 from pydicom.sequence import Sequence as DicomSequence
 from pydicom.sr.coding import Code
-from pydicom.valuerep import DSfloat, validate_value
+from pydicom.valuerep import EXPLICIT_VR_LENGTH_32, DSfloat, validate_value
 
 __all__ = [
+    "NotEncodable",
     "code_content",
+    "encode_items",
     "image_content",
     "measurement",
     "measurement_group",
@@ -308,3 +318,100 @@ def measurement_group(
     children += evaluations
     children += source_images
     return _set_content(ds, children)
+
+
+# --------------------------------------------------------------------------------------------
+# Encoding a content tree (PS3.5 7.1.2 Explicit VR Little Endian, 7.5 nested data sets)
+
+
+class NotEncodable(Exception):
+    """An element :func:`encode_items` leaves to pydicom's writer."""
+
+
+_ITEM_TAG = struct.pack("<HH", 0xFFFE, 0xE000)  # Item (PS3.5 7.5)
+# VRs whose values are text in the Specific Character Set (PS3.5 6.1.2.3), of those written here.
+_CHARSET_VRS = frozenset({"SH", "LO", "UC", "UT"})
+# VRs of the default repertoire written as pydicom writes strings (PS3.5 6.1.2.2).
+_ASCII_VRS = frozenset({"CS", "UR"})
+
+
+def encode_items(items: Iterable[Dataset], encoding: str) -> bytes:
+    """The value of a Sequence of ``items`` in Explicit VR Little Endian, as pydicom writes it.
+
+    Parameters
+    ----------
+    items:
+        Sequence items built by this module (their elements' VRs among SQ, CS, SH, LO, UC,
+        UR, UT, UI, DS, IS and FD).
+    encoding:
+        The Python codec of the document's Specific Character Set (a single, stateless one:
+        no ISO 2022 code extensions), for SH, LO, UC and UT values.
+
+    Raises
+    ------
+    NotEncodable
+        For an element or item outside that (another VR, a raw or undefined-length element, an
+        item with its own character set, text the codec cannot encode): pydicom writes those.
+    """
+    out = bytearray()
+    for ds in items:
+        _encode_item(out, ds, encoding)
+    return bytes(out)
+
+
+def _encode_item(out: bytearray, ds: Dataset, encoding: str) -> None:
+    if ds.is_undefined_length_sequence_item or 0x00080005 in ds:
+        raise NotEncodable("an undefined-length item, or an item with its own character set")
+    out += _ITEM_TAG
+    length_at = len(out)
+    out += b"\0\0\0\0"
+    for tag in sorted(ds.keys()):
+        if tag.element == 0 and tag.group > 6:
+            continue  # retired group lengths, which pydicom does not write (PS3.5 7.2)
+        elem = ds.get_item(tag)
+        if elem is None or elem.is_raw or elem.is_undefined_length:
+            raise NotEncodable(f"element {tag} is raw or of undefined length")
+        vr = str(elem.VR)
+        if vr == "SQ":
+            out += struct.pack("<HH2sHI", tag.group, tag.element, b"SQ", 0, 0)
+            start = len(out)
+            for child in elem.value or ():
+                _encode_item(out, child, encoding)
+            struct.pack_into("<I", out, start - 4, len(out) - start)
+            continue
+        data = _value_bytes(vr, elem.value, encoding) if not elem.is_empty else b""
+        if vr in EXPLICIT_VR_LENGTH_32:
+            out += struct.pack("<HH2sHI", tag.group, tag.element, vr.encode(), 0, len(data))
+        elif len(data) <= 0xFFFF:
+            out += struct.pack("<HH2sH", tag.group, tag.element, vr.encode(), len(data))
+        else:
+            raise NotEncodable(f"element {tag} is too long for a 16-bit length")
+        out += data
+    struct.pack_into("<I", out, length_at, len(out) - length_at - 4)
+
+
+def _value_bytes(vr: str, value: Any, encoding: str) -> bytes:
+    multi = isinstance(value, MultiValue | list | tuple)
+    try:
+        if vr == "FD" and not multi:
+            return struct.pack("<d", value)
+        if vr in ("DS", "IS"):
+            values = value if multi else [value]
+            text = "\\".join(
+                v.original_string if hasattr(v, "original_string") else str(v) for v in values
+            )
+            return _padded(text.encode(default_encoding), b" ")
+        if vr == "UI" and not multi:
+            return _padded(str(value).encode(default_encoding), b"\0")
+        if vr in _ASCII_VRS:
+            text = "\\".join(value) if multi else str(value)
+            return _padded(text.encode(default_encoding), b" ")
+        if vr in _CHARSET_VRS and not multi:
+            return _padded(str(value).encode(encoding), b" ")
+    except UnicodeError as exc:
+        raise NotEncodable(f"a {vr} value the character set cannot encode") from exc
+    raise NotEncodable(f"VR {vr} (multi-valued: {multi})")
+
+
+def _padded(data: bytes, pad: bytes) -> bytes:
+    return data + pad if len(data) % 2 else data

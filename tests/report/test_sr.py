@@ -13,6 +13,7 @@ from pydicom import dcmread
 from pydicom.sr.codedict import codes
 from report.conftest import make_key_slices
 
+from sigreport.report import sr_content
 from sigreport.report.sr import PRIVATE_SCHEME, build_sr, grade_name, write_sr
 
 
@@ -257,3 +258,27 @@ def test_library_is_per_series_when_lesions_lie_on_different_slices(findings, st
         mean = _value(groups[lesion], codes.DCM.MRSignalIntensity, "T2", codes.cid7464.Mean, study)
         [ref] = mean.referenced_images
         assert ref.referenced_sop_instance_uid == study["T2"].instances[index].sop_instance_uid
+
+
+@pytest.mark.parametrize(
+    "charset, site", [("ISO_IR 100", "région frontale"), ("ISO_IR 192", "额叶")]
+)
+def test_write_sr_writes_what_pydicom_writes(
+    findings, study, key_slices, tmp_path, monkeypatch, charset, site
+):
+    # write_sr encodes the measurement groups itself (sr_content.encode_items); the file must be
+    # byte for byte what pydicom writes for the same document.
+    encoded = []
+    encode = sr_content.encode_items
+    monkeypatch.setattr(
+        sr_content, "encode_items", lambda *a: encoded.append(encode(*a)) or encoded[-1]
+    )
+    findings["lesions"][0]["site"] = site
+    document = build_sr(findings, key_slices, study)
+    document.SpecificCharacterSet = charset
+    write_sr(tmp_path / "fast.dcm", document)
+    assert len(encoded) == 1  # the groups took the fast path
+    document.save_as(tmp_path / "pydicom.dcm", enforce_file_format=True)
+    assert (tmp_path / "fast.dcm").read_bytes() == (tmp_path / "pydicom.dcm").read_bytes()
+    groups = hd.sr.srread(tmp_path / "fast.dcm").content.get_image_measurement_groups()
+    assert any(site in group.tracking_identifier for group in groups)

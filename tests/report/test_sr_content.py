@@ -153,3 +153,54 @@ def test_bad_arguments_are_refused_as_highdicom_refuses_them():
         sr_content.measurement_group(sr_content.tracking_identifier(SOP, "L1")[:1])
     with pytest.raises(ValueError):
         sr_content.measurement(codes.SCT.Volume, float("nan"), UNIT_NONE)  # not a DS (PS3.5)
+
+
+def _sequence_bytes(items) -> bytes:
+    """pydicom's encoding of ``items`` as a Content Sequence, without the element's header."""
+    return encoded(items)[12:]  # tag (4), VR and reserved (4), 32-bit length (4): PS3.5 7.1.2
+
+
+def test_encode_items_writes_what_pydicom_writes():
+    group = sr_content.measurement_group(
+        sr_content.tracking_identifier(generate_uid(), "L1 (région frontale, 3 mm)"),
+        finding_type=codes.SCT.Lesion,
+        measurements=[
+            sr_content.measurement(
+                codes.DCM.MRSignalIntensity,
+                value,
+                UNIT_NONE,
+                derivation=codes.cid7464.Mean,
+                images=[sr_content.image_content(ENHANCED_MR, SOP, [1, 12])],
+            )
+            for value in (1 / 3, 523.8096, 7, -0.0, 1e20)
+        ],
+        evaluations=[
+            sr_content.code_content(
+                private("B-" + "x" * 20, "long"), Code("urn:oid:1.2.3", "X", "urn"), "CONTAINS"
+            )
+        ],
+    )
+    # No Specific Character Set: pydicom's default, ISO 8859-1 ("iso8859", PS3.5 6.1.2.1).
+    assert sr_content.encode_items([group], "iso8859") == _sequence_bytes([group])
+    # The document's character set (inherited by every item, PS3.5 7.5.3) encodes the text.
+    utf8 = Dataset()
+    utf8.SpecificCharacterSet = "ISO_IR 192"
+    utf8.ContentSequence = [group]
+    fp = DicomBytesIO()
+    fp.is_little_endian, fp.is_implicit_VR = True, False
+    write_dataset(fp, utf8)
+    assert fp.getvalue().endswith(sr_content.encode_items([group], "UTF8"))
+
+
+def test_encode_items_leaves_what_it_does_not_know_to_pydicom():
+    text = sr_content.text_content(codes.DCM.Comment, "漢字", "CONTAINS")
+    with pytest.raises(sr_content.NotEncodable):
+        sr_content.encode_items([text], "latin_1")  # not in ISO 8859-1: pydicom decides
+    person = Dataset()
+    person.PersonName = "Doe^Jane"  # PN: not a VR this module writes
+    with pytest.raises(sr_content.NotEncodable):
+        sr_content.encode_items([person], "latin_1")
+    own_charset = sr_content.text_content(codes.DCM.Comment, "x", "CONTAINS")
+    own_charset.SpecificCharacterSet = "ISO_IR 100"
+    with pytest.raises(sr_content.NotEncodable):
+        sr_content.encode_items([own_charset], "latin_1")
