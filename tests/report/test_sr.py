@@ -13,6 +13,7 @@ from pydicom import dcmread
 from pydicom.sr.codedict import codes
 from report.conftest import make_key_slices
 
+from sigreport.report import sr as sr_module
 from sigreport.report import sr_content
 from sigreport.report.sr import PRIVATE_SCHEME, build_sr, grade_name, write_sr
 
@@ -224,16 +225,31 @@ def test_image_library_describes_each_series_once(sr, study):
     assert len(entries) == len(study)
 
 
-def test_library_is_per_series_when_lesions_lie_on_different_slices(findings, study, tmp_path):
+def test_library_is_per_series_when_lesions_lie_on_different_slices(
+    findings, study, tmp_path, monkeypatch
+):
     # Each lesion's key slice on its own slice of every series: the image library (TID 1600)
-    # still holds one entry per series, while each lesion's values reference its own slice.
+    # still holds one entry per series, while each lesion's values reference its own slice;
+    # every key slice is in the evidence, though one header is read per series.
     slice_of = {"L1": 0, "L2": 1, "L3": 2}
     keys = [
         replace(key, slice_index=slice_of[key.roi_id], sop_instance_uid=None)
         for key in make_key_slices(study)
     ]
+    read = []
+    monkeypatch.setattr(
+        sr_module, "dcmread", lambda path, **kw: read.append(path) or dcmread(path, **kw)
+    )
     write_sr(tmp_path / "sr.dcm", build_sr(findings, keys, study))
+    assert len(read) == len(study)
     document = hd.sr.srread(tmp_path / "sr.dcm")
+    evidence = {
+        item.ReferencedSOPInstanceUID
+        for study_item in document.CurrentRequestedProcedureEvidenceSequence
+        for series in study_item.ReferencedSeriesSequence
+        for item in series.ReferencedSOPSequence
+    }
+    assert evidence == {s.instances[i].sop_instance_uid for s in study.values() for i in (0, 1, 2)}
     [library] = [
         item
         for item in document.ContentSequence
