@@ -12,17 +12,23 @@ UNVERIFIED (PS3.3 C.17.2), and it carries the report's cautions as comments.
 from __future__ import annotations
 
 import warnings
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
 import highdicom as hd
 from pydicom import Dataset, dcmread
-from pydicom.charset import python_encoding
+from pydicom.charset import convert_encodings, custom_encoders, default_encoding, python_encoding
+from pydicom.dataelem import DataElement, RawDataElement
+from pydicom.sequence import Sequence as DicomSequence
 from pydicom.sr.codedict import codes
 from pydicom.sr.coding import Code
+from pydicom.tag import BaseTag
+from pydicom.uid import ExplicitVRLittleEndian
+from pydicom.valuerep import AMBIGUOUS_VR
 
 from sigreport.model import InstanceRef, KeySlice, Stack
+from sigreport.report import sr_content
 from sigreport.report.sites import SiteTable, load_sites
 from sigreport.report.tables import ordered_roles, roi_medians
 
@@ -58,9 +64,9 @@ DERIVATIONS: dict[str, Code] = {
 }
 
 
-def private(value: str, meaning: str) -> hd.sr.CodedConcept:
+def private(value: str, meaning: str) -> Code:
     """A concept of the private scheme ``99SIGRPT`` (meaning cut to the LO limit of 64)."""
-    return hd.sr.CodedConcept(value, PRIVATE_SCHEME, meaning[:64])
+    return Code(value, PRIVATE_SCHEME, meaning[:64])
 
 
 # Concepts with no PS3.16 equivalent.
@@ -100,29 +106,45 @@ CURVE_CODES = {
 }
 
 
-def role_method(role: str) -> hd.sr.CodedConcept:
+def role_method(role: str) -> Code:
     """Measurement Method naming the series a value was measured on (private concept)."""
     return private(f"ROLE-{role}", f"Measured on the {role} series")
 
 
-def grade_name(role: str) -> hd.sr.CodedConcept:
+def grade_name(role: str) -> Code:
     return private(f"GRADE-{role}", f"Signal relative to reference tissue on {role}")
 
 
-def drop_name(kind: str) -> hd.sr.CodedConcept:
+def drop_name(kind: str) -> Code:
     return private(f"DROP-{kind.upper()}", f"{kind.capitalize()} suppression signal drop")
 
 
-def suppressed_name(kind: str) -> hd.sr.CodedConcept:
+def suppressed_name(kind: str) -> Code:
     return private(f"SUPP-{kind.upper()}", f"{kind.capitalize()} suppression")
 
 
-def reliable_name(kind: str) -> hd.sr.CodedConcept:
+def reliable_name(kind: str) -> Code:
     return private(f"RELIABLE-{kind.upper()}", f"{kind.capitalize()} suppression flag reliable")
 
 
+# PS3.16 codes used for every group, looked up once (pydicom's code dictionaries resolve each
+# attribute access anew).
+MR_SIGNAL = codes.DCM.MRSignalIntensity
+RATIO = codes.SCT.Ratio
+VOLUME = codes.SCT.Volume
+DIAMETER = codes.SCT.Diameter
+MAXIMUM = codes.cid7464.Maximum
+MEDIAN = codes.cid7464.Median
+LESION = codes.SCT.Lesion
+YES, NO = codes.SCT.Yes, codes.SCT.No
+PRESENT, ABSENT = codes.SCT.Present, codes.SCT.Absent
+FOCAL_ENHANCEMENT = codes.cid6345.FocalContrastEnhancement
+COMMENT = codes.DCM.Comment
+IMAGING_MEASUREMENTS = codes.DCM.ImagingMeasurements  # DCM 126010, TID 1500
+
+
 def _yes_no(value: bool) -> Code:
-    return codes.SCT.Yes if value else codes.SCT.No
+    return YES if value else NO
 
 
 def _instance_for(key: KeySlice, stack: Stack) -> InstanceRef | None:
@@ -159,44 +181,80 @@ def _with_type2(ds: Dataset) -> Dataset:
     return ds
 
 
-def _library_images(datasets: Iterable[Dataset]) -> list[Dataset]:
-    """The sources the image library (TID 1602) can describe: highdicom reads their geometry
-    (pixel spacing, position, orientation, slice thickness) and rejects a source whose values
-    are empty or malformed; such a source is referenced by the measurements only."""
+def _image_library(datasets: Sequence[Dataset]) -> hd.sr.ImageLibrary | None:
+    """The image library (TID 1600) of the sources it can describe: highdicom reads their
+    geometry (pixel spacing, position, orientation, slice thickness) and rejects a source whose
+    values are empty or malformed; such a source is referenced by the measurements only. An
+    Enhanced MR multi-frame file keeps its geometry in functional groups, which highdicom's
+    library entry does not read, so it is left out too (no top-level Pixel Spacing)."""
+    candidates = [ds for ds in datasets if "PixelSpacing" in ds]
+    if not candidates:
+        return None
+    try:
+        return hd.sr.ImageLibrary(candidates)
+    except Exception:  # noqa: BLE001 - highdicom raises several kinds on odd values
+        pass
     usable = []
-    for ds in datasets:
-        if "PixelSpacing" not in ds:
-            continue
+    for ds in candidates:
         try:
-            hd.sr.ImageLibraryEntryDescriptors(ds)
-        except Exception:  # noqa: BLE001 - highdicom raises several kinds on odd values
+            hd.sr.ImageLibrary([ds])
+        except Exception:  # noqa: BLE001 - as above, one source at a time
             continue
         usable.append(ds)
-    return usable
+    return hd.sr.ImageLibrary(usable) if usable else None
 
 
 class _Sources:
-    """The source instances' headers (read once, without pixels) and their references."""
+    """The key slices as the SR's evidence (PS3.3 C.17.2, Current Requested Procedure Evidence
+    Sequence).
+
+    One header is read per series (its first key slice, without pixels): it gives the patient,
+    study and equipment the SR copies and the series' image library entry. The other key
+    slices need only their study, series, SOP class and SOP instance UIDs in the evidence;
+    those come from the index and from their series' header.
+    """
 
     def __init__(self) -> None:
-        self.datasets: dict[str, Dataset] = {}
+        self.evidence: dict[str, Dataset] = {}
+        self.headers: dict[str, Dataset] = {}
 
-    def add(self, ref: InstanceRef) -> Dataset:
-        if ref.sop_instance_uid not in self.datasets:
-            try:
-                ds = dcmread(ref.path, stop_before_pixels=True)
-            except Exception as exc:  # noqa: BLE001 - re-raised with the file named
-                raise ValueError(f"cannot read source image header {ref.path}: {exc}") from exc
-            # The SOP identifiers as the index read them (an empty SOPClassUID falls back to the
-            # File Meta's MediaStorageSOPClassUID there, PS3.10 7.1).
-            ds.SOPClassUID = ref.sop_class_uid
-            ds.SOPInstanceUID = ref.sop_instance_uid
-            self.datasets[ref.sop_instance_uid] = _with_type2(ds)
-        return self.datasets[ref.sop_instance_uid]
+    def add(self, ref: InstanceRef, stack: Stack) -> None:
+        if ref.sop_instance_uid in self.evidence:
+            return
+        header = self.headers.get(stack.key)
+        if header is None:
+            header = self.headers[stack.key] = _read_header(ref)
+            self.evidence[ref.sop_instance_uid] = header
+            return
+        ds = Dataset()
+        ds.StudyInstanceUID = header.StudyInstanceUID
+        ds.SeriesInstanceUID = header.SeriesInstanceUID
+        ds.SOPClassUID = ref.sop_class_uid
+        ds.SOPInstanceUID = ref.sop_instance_uid
+        self.evidence[ref.sop_instance_uid] = ds
 
-    @staticmethod
-    def frames(ref: InstanceRef) -> list[int] | None:
-        return [ref.frame] if ref.frame is not None else None
+    def library(self) -> list[Dataset]:
+        """One header per series, in the order the key slices name them."""
+        per_series: dict[str, Dataset] = {}
+        for ds in self.headers.values():
+            per_series.setdefault(str(ds.SeriesInstanceUID), ds)
+        return list(per_series.values())
+
+
+def _read_header(ref: InstanceRef) -> Dataset:
+    try:
+        ds = dcmread(ref.path, stop_before_pixels=True)
+    except Exception as exc:  # noqa: BLE001 - re-raised with the file named
+        raise ValueError(f"cannot read source image header {ref.path}: {exc}") from exc
+    # The SOP identifiers as the index read them (an empty SOPClassUID falls back to the File
+    # Meta's MediaStorageSOPClassUID there, PS3.10 7.1).
+    ds.SOPClassUID = ref.sop_class_uid
+    ds.SOPInstanceUID = ref.sop_instance_uid
+    return _with_type2(ds)
+
+
+def _frames(ref: InstanceRef) -> list[int] | None:
+    return [ref.frame] if ref.frame is not None else None
 
 
 def build_sr(
@@ -209,6 +267,12 @@ def build_sr(
     sites: SiteTable | None = None,
 ) -> hd.sr.Comprehensive3DSR:
     """The draft measurement report of ``findings`` as a Comprehensive 3D SR.
+
+    highdicom builds the document (its modules, the evidence, the observation context and the
+    image library); the measurement groups (TID 1501) are built by
+    :mod:`sigreport.report.sr_content`, item for item as highdicom's templates build them, and
+    are plain pydicom datasets in the returned object: read the written file with
+    ``highdicom.sr.srread`` for highdicom's views of them.
 
     Parameters
     ----------
@@ -235,23 +299,21 @@ def build_sr(
     for key in key_slices:
         stack = stacks.get(str(key.role))
         ref = _instance_for(key, stack) if stack is not None else None
-        if ref is not None:
-            sources.add(ref)
+        if stack is not None and ref is not None:
+            sources.add(ref, stack)
             key_refs[(key.roi_id, str(key.role))] = ref
-    if not sources.datasets:
+    if not sources.evidence:
         for stack in stacks.values():
             if stack.instances:
-                sources.add(stack.instances[len(stack.instances) // 2])
+                sources.add(stack.instances[len(stack.instances) // 2], stack)
                 break
-    if not sources.datasets:
+    if not sources.evidence:
         raise ValueError('Argument "stacks" holds no source instance to build the SR from.')
 
     if sites is None:
         sites = load_sites()
-    groups = [
-        _lesion_group(lesion, key_refs, sources, sites) for lesion in findings.get("lesions", [])
-    ]
-    groups += [_roi_group(roi, key_refs, sources, sites) for roi in findings.get("rois", [])]
+    groups = [_lesion_group(lesion, key_refs, sites) for lesion in findings.get("lesions", [])]
+    groups += [_roi_group(roi, key_refs, sites) for roi in findings.get("rois", [])]
     device = hd.sr.ObserverContext(
         observer_type=codes.DCM.Device,
         observer_identifying_attributes=hd.sr.DeviceObserverIdentifyingAttributes(
@@ -262,53 +324,14 @@ def build_sr(
         ),
     )
     context = hd.sr.ObservationContext(observer_device_context=device)
-    # The image library (TID 1600) describes each image by its top-level geometry; an Enhanced
-    # MR multi-frame file keeps that in functional groups, which highdicom's library entry does
-    # not read, so multi-frame sources are referenced by the measurements only. One entry per
-    # series (its first key slice): the descriptors (modality, frame of reference, spacing,
-    # orientation) are the series'; the library's entries are optional (TID 1600/1601: 1-n, U)
-    # and one per key slice made them most of the document's size and writing time.
-    per_series: dict[str, Dataset] = {}
-    for ds in sources.datasets.values():
-        if "PixelSpacing" in ds:
-            per_series.setdefault(str(ds.SeriesInstanceUID), ds)
-    library = list(per_series.values()) or None
-    report = hd.sr.MeasurementReport(
-        observation_context=context,
-        procedure_reported=codes.cid100.MultiparametricMRI,
-        imaging_measurements=groups,
-        # The image library (TID 1600) describes each image by its top-level geometry; an
-        # Enhanced MR multi-frame file keeps that in functional groups, which highdicom's
-        # library entry does not read, so multi-frame sources are referenced by the
-        # measurements only.
-        referenced_images=_library_images(sources.datasets.values()) or None,
-    )
-    # The cautions (and the warnings of the run) travel with the numbers: TEXT comments on the
-    # report's root container (TID 1500 is extensible).
-    root = report[0]
-    for caution in findings.get("cautions", []):
-        root.ContentSequence.append(
-            hd.sr.TextContentItem(
-                name=codes.DCM.Comment, value=str(caution), relationship_type="CONTAINS"
-            )
-        )
-    for note in findings.get("qc", []):
-        if note.get("level") in ("warning", "error"):
-            root.ContentSequence.append(
-                hd.sr.TextContentItem(
-                    name=codes.DCM.Comment,
-                    value=f"QC {note.get('level')} ({note.get('code')}): {note.get('message')}",
-                    relationship_type="CONTAINS",
-                )
-            )
-    evidence = list(sources.datasets.values())
     # highdicom's document constructor deep-copies and re-parses the whole content tree and
-    # walks it for references (measured: three quarters of the SR's time on the demo, for a
-    # tree highdicom's template classes just built). The document is built around the same
-    # template without measurements (highdicom groups the evidence and fills every module),
-    # with one empty group (highdicom requires one), then the full tree is attached as the constructor itself does (the root container's
-    # attributes on the dataset). Every image the tree references is a key slice in
-    # ``evidence`` by construction; checked here because the constructor no longer does.
+    # walks it for references (measured: three quarters of the SR's time on the demo). The
+    # document is built around the report's template with one empty group (highdicom
+    # requires one), so that highdicom groups the evidence and fills every module; the image
+    # library and the measurement groups are then put in the same tree the dataset holds
+    # (the constructor put the root container's attributes on the dataset), and the content
+    # view is pointed at it. Every image the groups reference is a key slice in the evidence
+    # by construction; checked here because the constructor no longer sees them.
     skeleton = hd.sr.MeasurementReport(
         observation_context=context,
         procedure_reported=codes.cid100.MultiparametricMRI,
@@ -319,7 +342,7 @@ def build_sr(
         ],
     )
     sr = hd.sr.Comprehensive3DSR(
-        evidence=evidence,
+        evidence=list(sources.evidence.values()),
         content=skeleton,
         series_instance_uid=hd.UID(),
         series_number=series_number,
@@ -330,13 +353,50 @@ def build_sr(
         is_final=False,
         is_verified=False,
     )
+    root = skeleton[0]
+    # The image library (TID 1600, optional: 1-n, U) describes each series once, by its first
+    # key slice: the descriptors (modality, frame of reference, spacing, orientation) are the
+    # series'; one entry per key slice made them most of the document's size and writing time.
+    library = _image_library(sources.library())
     referenced = {ref.sop_instance_uid for ref in key_refs.values()}
-    referenced.update(ds.SOPInstanceUID for ds in library or [])
-    missing = referenced - set(sources.datasets)
+    if library is not None:
+        referenced.update(
+            entry.ReferencedSOPSequence[0].ReferencedSOPInstanceUID
+            for group in library[0].ContentSequence
+            for entry in group.ContentSequence
+            if entry.ValueType == "IMAGE"
+        )
+    missing = referenced - set(sources.evidence)
     if missing:  # pragma: no cover - a bug, not an input problem
         raise RuntimeError(f"SR references instances missing from its evidence: {sorted(missing)}")
-    for tag, value in root.items():
-        sr[tag] = value
+    [position] = [
+        i
+        for i, item in enumerate(root.ContentSequence)
+        if item.ValueType == "CONTAINER"
+        and item.ConceptNameCodeSequence[0].CodeValue == IMAGING_MEASUREMENTS.value
+    ]
+    imaging = root.ContentSequence[position]
+    # TID 1500: the image library comes right before the imaging measurements.
+    if library is not None:
+        root.ContentSequence.insert(position, library[0])
+    imaging[_CONTENT_SEQUENCE] = DataElement(_CONTENT_SEQUENCE, "SQ", DicomSequence(groups))
+    # The cautions (and the warnings of the run) travel with the numbers: TEXT comments on the
+    # report's root container (TID 1500 is extensible).
+    for caution in findings.get("cautions", []):
+        root.ContentSequence.append(
+            hd.sr.TextContentItem(name=COMMENT, value=str(caution), relationship_type="CONTAINS")
+        )
+    for note in findings.get("qc", []):
+        if note.get("level") in ("warning", "error"):
+            root.ContentSequence.append(
+                hd.sr.TextContentItem(
+                    name=COMMENT,
+                    value=f"QC {note.get('level')} ({note.get('code')}): {note.get('message')}",
+                    relationship_type="CONTAINS",
+                )
+            )
+    if sr.ContentSequence is not root.ContentSequence:  # pragma: no cover - highdicom changed
+        raise RuntimeError("the SR's dataset no longer holds the content tree it was built with")
     sr._content = hd.sr.ContentSequence([root], is_root=True)  # type: ignore[list-item]
     sr.SeriesDescription = SR_SERIES_DESCRIPTION
     scheme = Dataset()
@@ -347,29 +407,37 @@ def build_sr(
     return sr
 
 
+_CONTENT_SEQUENCE = 0x0040A730  # Content Sequence (PS3.3 C.17.3)
+
+
+def _image(ref: InstanceRef, relationship: str = sr_content.INFERRED_FROM) -> Dataset:
+    """The key slice ``ref`` as a Source of Measurement (TID 300; TID 1501 with CONTAINS)."""
+    return sr_content.image_content(
+        ref.sop_class_uid, ref.sop_instance_uid, _frames(ref), relationship=relationship
+    )
+
+
+def _tracking(label: str) -> list[Dataset]:
+    return sr_content.tracking_identifier(hd.UID(), label)
+
+
 def _lesion_group(
     lesion: Mapping[str, Any],
     key_refs: Mapping[tuple[str, str], InstanceRef],
-    sources: _Sources,
     sites: SiteTable,
-) -> hd.sr.MeasurementsAndQualitativeEvaluations:
+) -> Dataset:
     lesion_id = str(lesion.get("id"))
     site = str(lesion.get("site") or "")
-    measurements: list[hd.sr.Measurement] = []
-    evaluations: list[hd.sr.QualitativeEvaluation] = []
-    group_images: list[hd.sr.SourceImageForMeasurementGroup] = []
+    measurements: list[Dataset] = []
+    evaluations: list[Dataset] = []
+    group_images: dict[str, Dataset] = {}
 
     if lesion.get("volume_ml") is not None:
-        measurements.append(
-            hd.sr.Measurement(name=codes.SCT.Volume, value=float(lesion["volume_ml"]), unit=UNIT_ML)
-        )
+        measurements.append(sr_content.measurement(VOLUME, float(lesion["volume_ml"]), UNIT_ML))
     if lesion.get("max_diameter_mm") is not None:
         measurements.append(
-            hd.sr.Measurement(
-                name=codes.SCT.Diameter,
-                value=float(lesion["max_diameter_mm"]),
-                unit=UNIT_MM,
-                derivation=codes.cid7464.Maximum,
+            sr_content.measurement(
+                DIAMETER, float(lesion["max_diameter_mm"]), UNIT_MM, derivation=MAXIMUM
             )
         )
     signal: Mapping[str, Any] = lesion.get("signal") or {}
@@ -378,84 +446,75 @@ def _lesion_group(
         if stats is None:
             continue
         ref = key_refs.get((lesion_id, role))
-        images = None
         if ref is not None:
-            ds = sources.datasets[ref.sop_instance_uid]
-            images = [
-                hd.sr.SourceImageForMeasurement(
-                    ds.SOPClassUID, ds.SOPInstanceUID, referenced_frame_numbers=_Sources.frames(ref)
-                )
-            ]
-            group_images.append(
-                hd.sr.SourceImageForMeasurementGroup(
-                    ds.SOPClassUID, ds.SOPInstanceUID, referenced_frame_numbers=_Sources.frames(ref)
-                )
-            )
+            group_images.setdefault(ref.sop_instance_uid, _image(ref, sr_content.CONTAINS))
         # The image the value was measured on (TID 300 "Source of Measurement", its series in
         # the evidence and image library) says which series it is: the lesion's key slice on
         # that series (the key slices only, never every instance); the private concept naming
         # the role only when there is no image to reference.
-        method = None if images else role_method(role)
+        method = None if ref is not None else role_method(role)
         for stat, derivation in DERIVATIONS.items():
             if stats.get(stat) is None:
                 continue
             measurements.append(
-                hd.sr.Measurement(
-                    name=codes.DCM.MRSignalIntensity,
-                    value=float(stats[stat]),
-                    unit=UNIT_NONE,
+                sr_content.measurement(
+                    MR_SIGNAL,
+                    float(stats[stat]),
+                    UNIT_NONE,
                     derivation=derivation,
                     method=method,
-                    referenced_images=images,
+                    images=[_image(ref)] if ref is not None else (),
                 )
             )
         if stats.get("ratio") is not None:
             measurements.append(
-                hd.sr.Measurement(
-                    name=codes.SCT.Ratio,
-                    value=float(stats["ratio"]),
-                    unit=UNIT_RATIO,
-                    derivation=codes.cid7464.Median,  # ratio of the medians (docs/usage.md)
+                sr_content.measurement(
+                    RATIO,
+                    float(stats["ratio"]),
+                    UNIT_RATIO,
+                    derivation=MEDIAN,  # ratio of the medians (docs/usage.md)
                     method=method,
-                    referenced_images=images,
+                    images=[_image(ref)] if ref is not None else (),
                 )
             )
         grade = GRADE_CODES.get(str(stats.get("grade")))
         if grade is not None:
-            evaluations.append(hd.sr.QualitativeEvaluation(grade_name(role), grade))
+            evaluations.append(
+                sr_content.code_content(grade_name(role), grade, sr_content.CONTAINS)
+            )
 
     enhancement = lesion.get("enhancement") or {}
     if enhancement.get("percent") is not None:
         measurements.append(
-            hd.sr.Measurement(
-                name=ENHANCEMENT_PERCENT,
-                value=float(enhancement["percent"]),
-                unit=UNIT_PERCENT,
+            sr_content.measurement(
+                ENHANCEMENT_PERCENT,
+                float(enhancement["percent"]),
+                UNIT_PERCENT,
                 method=private(
                     "ENH-PAIR", f"{enhancement.get('post')} against {enhancement.get('pre')}"
                 ),
-                referenced_images=_pair_images(
-                    lesion_id, (enhancement.get("pre"), enhancement.get("post")), key_refs, sources
+                images=_pair_images(
+                    lesion_id, (enhancement.get("pre"), enhancement.get("post")), key_refs
                 ),
             )
         )
         if enhancement.get("raw_percent") is not None:
             measurements.append(
-                hd.sr.Measurement(
-                    name=ENHANCEMENT_RAW_PERCENT,
-                    value=float(enhancement["raw_percent"]),
-                    unit=UNIT_PERCENT,
+                sr_content.measurement(
+                    ENHANCEMENT_RAW_PERCENT, float(enhancement["raw_percent"]), UNIT_PERCENT
                 )
             )
     if enhancement.get("enhancing") is not None:
         # PS3.16 CID 6345: a lesion ROI that enhances shows focal contrast enhancement.
-        value = (
-            codes.cid6345.FocalContrastEnhancement if enhancement["enhancing"] else codes.SCT.Absent
+        value = FOCAL_ENHANCEMENT if enhancement["enhancing"] else ABSENT
+        evaluations.append(
+            sr_content.code_content(CONTRAST_ENHANCEMENT, value, sr_content.CONTAINS)
         )
-        evaluations.append(hd.sr.QualitativeEvaluation(CONTRAST_ENHANCEMENT, value))
     if enhancement.get("pattern") in PATTERN_CODES:
         evaluations.append(
-            hd.sr.QualitativeEvaluation(ENHANCEMENT_PATTERN, PATTERN_CODES[enhancement["pattern"]])
+            sr_content.code_content(
+                ENHANCEMENT_PATTERN, PATTERN_CODES[enhancement["pattern"]], sr_content.CONTAINS
+            )
         )
 
     suppression: Mapping[str, Any] = lesion.get("suppression") or {}
@@ -465,51 +524,48 @@ def _lesion_group(
             continue
         if flag.get("drop_percent") is not None:
             measurements.append(
-                hd.sr.Measurement(
-                    name=drop_name(kind),
-                    value=float(flag["drop_percent"]),
-                    unit=UNIT_PERCENT,
+                sr_content.measurement(
+                    drop_name(kind),
+                    float(flag["drop_percent"]),
+                    UNIT_PERCENT,
                     method=private(
                         f"PAIR-{kind.upper()}", f"{flag.get('to')} against {flag.get('from')}"
                     ),
-                    referenced_images=_pair_images(
-                        lesion_id, (flag.get("from"), flag.get("to")), key_refs, sources
-                    ),
+                    images=_pair_images(lesion_id, (flag.get("from"), flag.get("to")), key_refs),
                 )
             )
         if flag.get("suppressed") is not None:
             evaluations.append(
-                hd.sr.QualitativeEvaluation(
-                    suppressed_name(kind), _yes_no(bool(flag["suppressed"]))
+                sr_content.code_content(
+                    suppressed_name(kind), _yes_no(bool(flag["suppressed"])), sr_content.CONTAINS
                 )
             )
         if flag.get("reliable") is not None:
             evaluations.append(
-                hd.sr.QualitativeEvaluation(reliable_name(kind), _yes_no(bool(flag["reliable"])))
+                sr_content.code_content(
+                    reliable_name(kind), _yes_no(bool(flag["reliable"])), sr_content.CONTAINS
+                )
             )
     family_measurements, family_evaluations = _family_content(lesion)
     measurements += family_measurements
     evaluations += family_evaluations
     if lesion.get("flow_void") is not None:
-        value = codes.SCT.Present if lesion["flow_void"] else codes.SCT.Absent
-        evaluations.append(hd.sr.QualitativeEvaluation(FLOW_VOID, value))
+        value = PRESENT if lesion["flow_void"] else ABSENT
+        evaluations.append(sr_content.code_content(FLOW_VOID, value, sr_content.CONTAINS))
     for key in lesion.get("behaviour") or []:
         evaluations.append(
-            hd.sr.QualitativeEvaluation(BEHAVIOUR, private(f"B-{key}", str(key).replace("-", " ")))
+            sr_content.code_content(
+                BEHAVIOUR, private(f"B-{key}", str(key).replace("-", " ")), sr_content.CONTAINS
+            )
         )
 
-    unique_images = list(
-        {(g.ReferencedSOPSequence[0].ReferencedSOPInstanceUID): g for g in group_images}.values()
-    )
-    return hd.sr.MeasurementsAndQualitativeEvaluations(
-        tracking_identifier=hd.sr.TrackingIdentifier(
-            uid=hd.UID(), identifier=f"{lesion_id} ({site})" if site else lesion_id
-        ),
-        finding_type=codes.SCT.Lesion,
-        finding_sites=finding_sites(site, sites) or None,
-        measurements=measurements or None,
-        qualitative_evaluations=evaluations or None,
-        source_images=unique_images or None,
+    return sr_content.measurement_group(
+        _tracking(f"{lesion_id} ({site})" if site else lesion_id),
+        finding_type=LESION,
+        finding_sites=finding_sites(site, sites),
+        measurements=measurements,
+        evaluations=evaluations,
+        source_images=list(group_images.values()),
     )
 
 
@@ -517,7 +573,7 @@ def _lesion_group(
 # Coded sites, the reference and control ROIs' own groups, and image references by series
 
 
-def finding_sites(text: str, sites: SiteTable) -> list[hd.sr.FindingSite]:
+def finding_sites(text: str, sites: SiteTable) -> list[Dataset]:
     """The TID 1501 Finding Site of a free-text site: the SNOMED CT site the lexicon's
     ``sites.toml`` matches in ``text``, with its laterality (PS3.16 CID 244: right, left,
     bilateral) when ``text`` names one side; [] when no site matches."""
@@ -525,35 +581,15 @@ def finding_sites(text: str, sites: SiteTable) -> list[hd.sr.FindingSite]:
     if found is None:
         return []
     side = sites.side(text)
-    return [
-        hd.sr.FindingSite(
-            anatomic_location=found.coded(), laterality=None if side is None else side.coded()
-        )
-    ]
-
-
-def _image_ref(
-    roi_id: str, role: str, key_refs: Mapping[tuple[str, str], InstanceRef], sources: _Sources
-) -> hd.sr.SourceImageForMeasurement | None:
-    ref = key_refs.get((roi_id, role))
-    if ref is None:
-        return None
-    ds = sources.datasets[ref.sop_instance_uid]
-    return hd.sr.SourceImageForMeasurement(
-        ds.SOPClassUID, ds.SOPInstanceUID, referenced_frame_numbers=_Sources.frames(ref)
-    )
+    return [sr_content.finding_site(found.coded(), None if side is None else side.coded())]
 
 
 def _pair_images(
-    roi_id: str,
-    roles: tuple[Any, Any],
-    key_refs: Mapping[tuple[str, str], InstanceRef],
-    sources: _Sources,
-) -> list[hd.sr.SourceImageForMeasurement] | None:
+    roi_id: str, roles: tuple[Any, Any], key_refs: Mapping[tuple[str, str], InstanceRef]
+) -> list[Dataset]:
     """The images of both series of a pair (enhancement, suppression) a value comes from."""
-    refs = [_image_ref(roi_id, str(role), key_refs, sources) for role in roles if role]
-    found = [r for r in refs if r is not None]
-    return found or None
+    refs = [key_refs.get((roi_id, str(role))) for role in roles if role]
+    return [_image(ref) for ref in refs if ref is not None]
 
 
 ROI_KIND_CONCEPT = private("ROI-KIND", "Region of interest role")
@@ -568,9 +604,8 @@ SNR_NAME = codes.DCM.SignalToNoiseRatio  # DCM 111787
 def _roi_group(
     roi: Mapping[str, Any],
     key_refs: Mapping[tuple[str, str], InstanceRef],
-    sources: _Sources,
     sites: SiteTable,
-) -> hd.sr.MeasurementsAndQualitativeEvaluations:
+) -> Dataset:
     """A reference or control ROI as its own measurement group (TID 1501): tracked by id, kind
     and tissue; finding type and site the tissue's SNOMED CT code (``sites.toml``) with the
     side its site names; volume, per-series medians (``rois[].medians``, findings schema 2)
@@ -580,39 +615,38 @@ def _roi_group(
     kind = str(roi.get("kind") or "")
     tissue = str(roi.get("tissue") or "")
     site = str(roi.get("site") or "")
-    measurements: list[hd.sr.Measurement] = []
-    evaluations: list[hd.sr.QualitativeEvaluation] = []
+    measurements: list[Dataset] = []
+    evaluations: list[Dataset] = []
     if kind in ROI_KINDS:
-        evaluations.append(hd.sr.QualitativeEvaluation(ROI_KIND_CONCEPT, ROI_KINDS[kind]))
-    if roi.get("volume_ml") is not None:
-        measurements.append(
-            hd.sr.Measurement(name=codes.SCT.Volume, value=float(roi["volume_ml"]), unit=UNIT_ML)
+        evaluations.append(
+            sr_content.code_content(ROI_KIND_CONCEPT, ROI_KINDS[kind], sr_content.CONTAINS)
         )
+    if roi.get("volume_ml") is not None:
+        measurements.append(sr_content.measurement(VOLUME, float(roi["volume_ml"]), UNIT_ML))
     medians: Mapping[str, Any] = roi_medians(roi)
     snr: Mapping[str, Any] = roi.get("snr") or {}
     for role in ordered_roles({**snr, **medians}):
-        image = _image_ref(roi_id, role, key_refs, sources)
-        images = [image] if image is not None else None
-        method = None if images else role_method(role)
+        ref = key_refs.get((roi_id, role))
+        method = None if ref is not None else role_method(role)
         if medians.get(role) is not None:
             measurements.append(
-                hd.sr.Measurement(
-                    name=codes.DCM.MRSignalIntensity,
-                    value=float(medians[role]),
-                    unit=UNIT_NONE,
-                    derivation=codes.cid7464.Median,
+                sr_content.measurement(
+                    MR_SIGNAL,
+                    float(medians[role]),
+                    UNIT_NONE,
+                    derivation=MEDIAN,
                     method=method,
-                    referenced_images=images,
+                    images=[_image(ref)] if ref is not None else (),
                 )
             )
         if snr.get(role) is not None:
             measurements.append(
-                hd.sr.Measurement(
-                    name=SNR_NAME,
-                    value=float(snr[role]),
-                    unit=UNIT_NONE,
+                sr_content.measurement(
+                    SNR_NAME,
+                    float(snr[role]),
+                    UNIT_NONE,
                     method=method,
-                    referenced_images=images,
+                    images=[_image(ref)] if ref is not None else (),
                 )
             )
     check = roi.get("check")
@@ -620,73 +654,64 @@ def _roi_group(
         kind_name = str(check.get("kind") or "")
         if check.get("drop_percent") is not None:
             measurements.append(
-                hd.sr.Measurement(
-                    name=drop_name(kind_name),
-                    value=float(check["drop_percent"]),
-                    unit=UNIT_PERCENT,
+                sr_content.measurement(
+                    drop_name(kind_name),
+                    float(check["drop_percent"]),
+                    UNIT_PERCENT,
                     method=private(
                         f"PAIR-{kind_name.upper()}",
                         f"{check.get('to')} against {check.get('from')}",
                     ),
-                    referenced_images=_pair_images(
-                        roi_id, (check.get("from"), check.get("to")), key_refs, sources
-                    ),
+                    images=_pair_images(roi_id, (check.get("from"), check.get("to")), key_refs),
                 )
             )
         if check.get("passed") is not None:
             evaluations.append(
-                hd.sr.QualitativeEvaluation(CONTROL_PASSED, _yes_no(bool(check["passed"])))
+                sr_content.code_content(
+                    CONTROL_PASSED, _yes_no(bool(check["passed"])), sr_content.CONTAINS
+                )
             )
     coded_tissue = sites.site(tissue)
     label = f"{roi_id} ({kind}: {tissue})" if tissue else f"{roi_id} ({kind})"
-    own_images = [
-        hd.sr.SourceImageForMeasurementGroup(
-            img.ReferencedSOPSequence[0].ReferencedSOPClassUID,
-            img.ReferencedSOPSequence[0].ReferencedSOPInstanceUID,
-        )
-        for img in {
-            ref.sop_instance_uid: _image_ref(roi_id, role, key_refs, sources)
-            for (rid, role), ref in key_refs.items()
-            if rid == roi_id
-        }.values()
-        if img is not None
-    ]
-    return hd.sr.MeasurementsAndQualitativeEvaluations(
-        tracking_identifier=hd.sr.TrackingIdentifier(uid=hd.UID(), identifier=label[:64]),
+    own_images = {
+        ref.sop_instance_uid: _image(ref, sr_content.CONTAINS)
+        for (rid, _role), ref in key_refs.items()
+        if rid == roi_id
+    }
+    return sr_content.measurement_group(
+        _tracking(label[:64]),
         finding_type=None if coded_tissue is None else coded_tissue.coded(),
         # The site's own words first; else the tissue, with the side the site names.
-        finding_sites=finding_sites(site, sites)
-        or finding_sites(f"{tissue} {site}", sites)
-        or None,
-        measurements=measurements or None,
-        qualitative_evaluations=evaluations or None,
-        source_images=own_images or None,
+        finding_sites=finding_sites(site, sites) or finding_sites(f"{tissue} {site}", sites),
+        measurements=measurements,
+        evaluations=evaluations,
+        source_images=list(own_images.values()),
     )
 
 
-def _family_content(
-    lesion: Mapping[str, Any],
-) -> tuple[list[hd.sr.Measurement], list[hd.sr.QualitativeEvaluation]]:
+def _family_content(lesion: Mapping[str, Any]) -> tuple[list[Dataset], list[Dataset]]:
     """The lesion's diffusion, susceptibility, chemical-shift and dynamic values: the ADC in
     10^-6 mm^2/s, drops and phase enhancement as percent, the fat fraction, the flags as
     yes / no and the curve type. An unreliable flag (a mismatched pair) is left out."""
-    measurements: list[hd.sr.Measurement] = []
-    evaluations: list[hd.sr.QualitativeEvaluation] = []
+    measurements: list[Dataset] = []
+    evaluations: list[Dataset] = []
 
     def flag(name: str, value: Any) -> None:
         if value is not None:
             evaluations.append(
-                hd.sr.QualitativeEvaluation(FAMILY_FLAGS[name], _yes_no(bool(value)))
+                sr_content.code_content(
+                    FAMILY_FLAGS[name], _yes_no(bool(value)), sr_content.CONTAINS
+                )
             )
 
     diffusion = lesion.get("diffusion") or {}
     if diffusion.get("adc_1e-6_mm2_s") is not None:
         measurements.append(
-            hd.sr.Measurement(
-                name=ADC,
-                value=float(diffusion["adc_1e-6_mm2_s"]),
-                unit=UNIT_ADC,
-                derivation=codes.cid7464.Median,
+            sr_content.measurement(
+                ADC,
+                float(diffusion["adc_1e-6_mm2_s"]),
+                UNIT_ADC,
+                derivation=MEDIAN,
                 method=role_method("ADC"),
             )
         )
@@ -699,10 +724,10 @@ def _family_content(
         pair = lesion.get(key) or {}
         if pair.get("drop_percent") is not None:
             measurements.append(
-                hd.sr.Measurement(
-                    name=concept,
-                    value=float(pair["drop_percent"]),
-                    unit=UNIT_PERCENT,
+                sr_content.measurement(
+                    concept,
+                    float(pair["drop_percent"]),
+                    UNIT_PERCENT,
                     method=private(
                         f"PAIR-{key.upper().replace('_', '-')}",
                         f"{pair.get('to')} against {pair.get('from')}",
@@ -714,10 +739,10 @@ def _family_content(
     cs = lesion.get("chemical_shift") or {}
     if cs.get("fat_fraction_percent") is not None:
         measurements.append(
-            hd.sr.Measurement(
-                name=FAT_FRACTION,
-                value=float(cs["fat_fraction_percent"]),
-                unit=UNIT_PERCENT,
+            sr_content.measurement(
+                FAT_FRACTION,
+                float(cs["fat_fraction_percent"]),
+                UNIT_PERCENT,
                 method=private("DIXON", "100 F / (W + F) of the Dixon medians"),
             )
         )
@@ -731,24 +756,86 @@ def _family_content(
             f"Phase {number}" + (f" at {float(delay):g} s" if delay is not None else ""),
         )
         measurements.append(
-            hd.sr.Measurement(
-                name=PHASE_ENHANCEMENT,
-                value=float(phase["percent"]),
-                unit=UNIT_PERCENT,
-                method=method,
+            sr_content.measurement(
+                PHASE_ENHANCEMENT, float(phase["percent"]), UNIT_PERCENT, method=method
             )
         )
         if delay is not None:
             measurements.append(
-                hd.sr.Measurement(
-                    name=PHASE_DELAY, value=float(delay), unit=UNIT_SECOND, method=method
-                )
+                sr_content.measurement(PHASE_DELAY, float(delay), UNIT_SECOND, method=method)
             )
     if dynamic.get("curve") in CURVE_CODES and dynamic.get("reliable") is not False:
-        evaluations.append(hd.sr.QualitativeEvaluation(CURVE, CURVE_CODES[dynamic["curve"]]))
+        evaluations.append(
+            sr_content.code_content(CURVE, CURVE_CODES[dynamic["curve"]], sr_content.CONTAINS)
+        )
     return measurements, evaluations
 
 
 def write_sr(path: Path, sr: hd.sr.Comprehensive3DSR) -> None:
-    """Write the SR as a DICOM file (PS3.10, with file meta)."""
-    sr.save_as(path, enforce_file_format=True)
+    """Write the SR as a DICOM file (PS3.10, with file meta).
+
+    The measurement groups are encoded by :func:`sr_content.encode_items`, byte for byte as
+    pydicom would write them, when the document is in Explicit VR Little Endian with a simple
+    character set; pydicom writes everything else (and the whole document otherwise).
+    """
+    (_with_groups_encoded(sr) or sr).save_as(path, enforce_file_format=True)
+
+
+def _with_groups_encoded(sr: Dataset) -> Dataset | None:
+    """A stand-in for ``sr`` to write, sharing its elements, whose Imaging Measurements
+    container holds its Content Sequence already encoded (a raw element, which pydicom writes
+    as it is); None when the groups are left to pydicom. ``sr`` itself is not changed.
+
+    pydicom's writer resolves ambiguous VRs over the whole tree below any dataset it did not
+    read in the file's transfer syntax, and that walk would decode the raw element again: the
+    stand-in root and container are marked as read in Explicit VR Little Endian, which is
+    true of what they hold only when no element at their own level has an ambiguous VR
+    (checked; every other item is still walked by pydicom as it is written).
+    """
+    meta = getattr(sr, "file_meta", None)
+    if meta is None or meta.get("TransferSyntaxUID") != ExplicitVRLittleEndian:
+        return None
+    declared = sr.get("SpecificCharacterSet")
+    charset = convert_encodings(declared) if declared else default_encoding
+    names = [charset] if isinstance(charset, str) else list(charset)
+    if len(names) != 1 or names[0] in custom_encoders:
+        return None  # ISO 2022 code extensions: pydicom's encoder
+    items = sr.get("ContentSequence")
+    positions = [
+        i
+        for i, content in enumerate(items or ())
+        if content.get("ValueType") == "CONTAINER"
+        and content.ConceptNameCodeSequence[0].CodeValue == IMAGING_MEASUREMENTS.value
+    ]
+    if len(positions) != 1:
+        return None
+    container = items[positions[0]]
+    if _CONTENT_SEQUENCE not in container or any(
+        elem.VR in AMBIGUOUS_VR for ds in (sr, container) for elem in ds.elements()
+    ):
+        return None
+    try:
+        raw = sr_content.encode_items(container[_CONTENT_SEQUENCE].value, names[0])
+    except sr_content.NotEncodable:
+        return None
+    encoded = Dataset()
+    for elem in container.elements():
+        if elem.tag != _CONTENT_SEQUENCE:
+            encoded[elem.tag] = elem
+    encoded[_CONTENT_SEQUENCE] = RawDataElement(
+        BaseTag(_CONTENT_SEQUENCE), "SQ", len(raw), raw, 0, False, True
+    )
+    encoded.set_original_encoding(False, True, default_encoding)
+    root = Dataset()
+    for elem in sr.elements():
+        if elem.tag != _CONTENT_SEQUENCE:
+            root[elem.tag] = elem
+    root[_CONTENT_SEQUENCE] = DataElement(
+        _CONTENT_SEQUENCE,
+        "SQ",
+        DicomSequence([encoded if i == positions[0] else c for i, c in enumerate(items)]),
+    )
+    root.set_original_encoding(False, True, charset)
+    root.file_meta = meta
+    root.preamble = getattr(sr, "preamble", None)
+    return root

@@ -5,13 +5,17 @@ from __future__ import annotations
 import os
 import shutil
 import subprocess
+from dataclasses import replace
 
 import highdicom as hd
 import pytest
 from pydicom import dcmread
 from pydicom.sr.codedict import codes
+from report.conftest import make_key_slices
 
-from sigreport.report.sr import PRIVATE_SCHEME, build_sr, grade_name
+from sigreport.report import sr as sr_module
+from sigreport.report import sr_content
+from sigreport.report.sr import PRIVATE_SCHEME, build_sr, grade_name, write_sr
 
 
 @pytest.fixture(scope="module")
@@ -219,3 +223,78 @@ def test_image_library_describes_each_series_once(sr, study):
     assert len(entries) == len(set(entries))
     assert sorted(series_of[uid] for uid in entries) == sorted({series_of[uid] for uid in entries})
     assert len(entries) == len(study)
+
+
+def test_library_is_per_series_when_lesions_lie_on_different_slices(
+    findings, study, tmp_path, monkeypatch
+):
+    # Each lesion's key slice on its own slice of every series: the image library (TID 1600)
+    # still holds one entry per series, while each lesion's values reference its own slice;
+    # every key slice is in the evidence, though one header is read per series.
+    slice_of = {"L1": 0, "L2": 1, "L3": 2}
+    keys = [
+        replace(key, slice_index=slice_of[key.roi_id], sop_instance_uid=None)
+        for key in make_key_slices(study)
+    ]
+    read = []
+    monkeypatch.setattr(
+        sr_module, "dcmread", lambda path, **kw: read.append(path) or dcmread(path, **kw)
+    )
+    write_sr(tmp_path / "sr.dcm", build_sr(findings, keys, study))
+    assert len(read) == len(study)
+    document = hd.sr.srread(tmp_path / "sr.dcm")
+    evidence = {
+        item.ReferencedSOPInstanceUID
+        for study_item in document.CurrentRequestedProcedureEvidenceSequence
+        for series in study_item.ReferencedSeriesSequence
+        for item in series.ReferencedSOPSequence
+    }
+    assert evidence == {s.instances[i].sop_instance_uid for s in study.values() for i in (0, 1, 2)}
+    [library] = [
+        item
+        for item in document.ContentSequence
+        if item.ConceptNameCodeSequence[0].CodeValue == "111028"  # Image Library, PS3.16
+    ]
+    entries = [
+        entry.ReferencedSOPSequence[0].ReferencedSOPInstanceUID
+        for group in library.ContentSequence
+        for entry in group.ContentSequence
+        if entry.ValueType == "IMAGE"
+    ]
+    series_of = {
+        i.sop_instance_uid: s.series_instance_uid for s in study.values() for i in s.instances
+    }
+    assert len(entries) == len(study)
+    assert len({series_of[uid] for uid in entries}) == len(study)
+    groups = {
+        g.tracking_identifier.split(" ")[0]: g.get_measurements()
+        for g in document.content.get_image_measurement_groups()
+    }
+    for lesion, index in slice_of.items():
+        mean = _value(groups[lesion], codes.DCM.MRSignalIntensity, "T2", codes.cid7464.Mean, study)
+        [ref] = mean.referenced_images
+        assert ref.referenced_sop_instance_uid == study["T2"].instances[index].sop_instance_uid
+
+
+@pytest.mark.parametrize(
+    "charset, site", [("ISO_IR 100", "région frontale"), ("ISO_IR 192", "额叶")]
+)
+def test_write_sr_writes_what_pydicom_writes(
+    findings, study, key_slices, tmp_path, monkeypatch, charset, site
+):
+    # write_sr encodes the measurement groups itself (sr_content.encode_items); the file must be
+    # byte for byte what pydicom writes for the same document.
+    encoded = []
+    encode = sr_content.encode_items
+    monkeypatch.setattr(
+        sr_content, "encode_items", lambda *a: encoded.append(encode(*a)) or encoded[-1]
+    )
+    findings["lesions"][0]["site"] = site
+    document = build_sr(findings, key_slices, study)
+    document.SpecificCharacterSet = charset
+    write_sr(tmp_path / "fast.dcm", document)
+    assert len(encoded) == 1  # the groups took the fast path
+    document.save_as(tmp_path / "pydicom.dcm", enforce_file_format=True)
+    assert (tmp_path / "fast.dcm").read_bytes() == (tmp_path / "pydicom.dcm").read_bytes()
+    groups = hd.sr.srread(tmp_path / "fast.dcm").content.get_image_measurement_groups()
+    assert any(site in group.tracking_identifier for group in groups)
