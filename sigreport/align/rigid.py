@@ -21,9 +21,11 @@ answers do not depend on the scheduling).
 
 from __future__ import annotations
 
+import hashlib
 import math
 import os
 import threading
+from collections import OrderedDict
 from collections.abc import Hashable, Iterator, Mapping
 from concurrent.futures import ThreadPoolExecutor
 from contextlib import contextmanager
@@ -41,6 +43,7 @@ from sigreport.model import Alignment
 __all__ = [
     "register_rigid",
     "register_series",
+    "clear_anchor_cache",
     "identity_alignment",
     "AlignmentSettings",
     "load_settings",
@@ -304,6 +307,60 @@ def _anchor_pyramid(
         base, wide = cropped, (lo, hi)
     levels = tuple(_smoothed(base, sigma, threads) for sigma in settings.smoothing_sigmas_mm)
     return _AnchorPyramid(base=base, levels=levels, box=wide)
+
+
+def _anchor_key(
+    fixed: sitk.Image, box: tuple[np.ndarray, np.ndarray] | None, settings: AlignmentSettings
+) -> tuple[Hashable, ...]:
+    """What the anchor pyramid depends on: the anchor's voxels (a digest, not the object's
+    identity, so a reloaded anchor hits too and a changed one misses), its geometry and pixel
+    type, the box and the settings."""
+    voxels = sitk.GetArrayViewFromImage(fixed)
+    digest = hashlib.blake2b(np.ascontiguousarray(voxels).data, digest_size=16).hexdigest()
+    geometry = (
+        fixed.GetSize(),
+        fixed.GetSpacing(),
+        fixed.GetOrigin(),
+        fixed.GetDirection(),
+        fixed.GetPixelID(),
+        fixed.GetNumberOfComponentsPerPixel(),
+    )
+    box_key = None if box is None else (tuple(map(float, box[0])), tuple(map(float, box[1])))
+    return (digest, geometry, box_key, settings)
+
+
+# The last few anchor pyramids (each a few MB: crops of the anchor), so that a caller
+# registering its series one at a time (to hold one series in memory at once) pays for the
+# anchor's smoothing once, not once per series.
+_ANCHOR_CACHE_SIZE = 2
+_ANCHOR_CACHE: OrderedDict[tuple[Hashable, ...], _AnchorPyramid | None] = OrderedDict()
+_ANCHOR_CACHE_LOCK = threading.Lock()
+
+
+def _cached_anchor_pyramid(
+    fixed: sitk.Image, box: tuple[np.ndarray, np.ndarray] | None, settings: AlignmentSettings
+) -> _AnchorPyramid | None:
+    key = _anchor_key(fixed, box, settings)
+    with _ANCHOR_CACHE_LOCK:
+        if key in _ANCHOR_CACHE:
+            _ANCHOR_CACHE.move_to_end(key)
+            return _ANCHOR_CACHE[key]
+    # Built outside the lock (it takes a fraction of a second); two callers racing on the
+    # same anchor build the same pyramid, and either copy serves.
+    anchor = _anchor_pyramid(fixed, box, settings, threads=os.cpu_count() or 1)
+    with _ANCHOR_CACHE_LOCK:
+        _ANCHOR_CACHE[key] = anchor
+        _ANCHOR_CACHE.move_to_end(key)
+        while len(_ANCHOR_CACHE) > _ANCHOR_CACHE_SIZE:
+            _ANCHOR_CACHE.popitem(last=False)
+    return anchor
+
+
+def clear_anchor_cache() -> None:
+    """Forget the anchor pyramids :func:`register_series` keeps between calls (memory only;
+    results never depend on the cache)."""
+    with _ANCHOR_CACHE_LOCK:
+        _ANCHOR_CACHE.clear()
 
 
 def _registration_method(
@@ -579,6 +636,11 @@ def register_series(
     describes. Series run in parallel threads, each on one ITK thread, so the result is the
     same whatever the number of workers.
 
+    The anchor's pyramid is also kept between calls (the last two anchors, keyed by a digest
+    of the anchor's voxels, its geometry, the box and the settings), so calling this once per
+    series, e.g. to hold one series in memory at a time, builds it once and gives bitwise the
+    same alignments as one call for all series. :func:`clear_anchor_cache` frees it.
+
     Parameters
     ----------
     fixed : SimpleITK.Image
@@ -607,7 +669,7 @@ def register_series(
         return {}
     workers = max_workers if max_workers is not None else (os.cpu_count() or 1)
     workers = max(1, min(int(workers), len(movings)))
-    anchor = _anchor_pyramid(fixed, box, settings, threads=os.cpu_count() or 1)
+    anchor = _cached_anchor_pyramid(fixed, box, settings)
     if anchor is None:
         return {key: _OUTSIDE_ANCHOR for key in movings}
     # Some of ITK's registration components take their thread count from the global default,
