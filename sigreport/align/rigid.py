@@ -302,44 +302,53 @@ class _AnchorPyramid:
     box: tuple[np.ndarray, np.ndarray] | None  # the box with its margin; None: whole anchor
 
 
+def _anchor_crop(
+    fixed: sitk.Image, box: tuple[np.ndarray, np.ndarray] | None, settings: AlignmentSettings
+) -> tuple[sitk.Image, tuple[np.ndarray, np.ndarray] | None] | None:
+    """The part of the anchor the registration uses, in its own pixel type (the ROIs' box plus
+    the margin, plus an apron for the smoothing), and the box with its margin; the whole anchor
+    and None without a box; None when the box misses the anchor."""
+    if box is None:
+        return fixed, None
+    lo, hi = box[0] - settings.margin_mm, box[1] + settings.margin_mm
+    # Crop a little wider than needed, so that the Gaussian's edge effects stay outside what
+    # the metric samples.
+    apron = max(settings.smoothing_sigmas_mm, default=0.0) * 2.0
+    cropped = _crop_to_box(fixed, lo - apron, hi + apron, _MIN_CROP_VOXELS)
+    if cropped is None or _crop_index(fixed, lo, hi, _MIN_CROP_VOXELS) is None:
+        return None
+    return cropped, (lo, hi)
+
+
 def _anchor_pyramid(
-    fixed: sitk.Image,
-    box: tuple[np.ndarray, np.ndarray] | None,
+    crop: sitk.Image,
+    wide: tuple[np.ndarray, np.ndarray] | None,
     settings: AlignmentSettings,
     threads: int,
-) -> _AnchorPyramid | None:
-    """Crop first (smoothing a whole 1 mm head is the slow part), then smooth each level.
-    None when the box misses the anchor."""
-    base = sitk.Cast(fixed, sitk.sitkFloat32)
-    wide = None
-    if box is not None:
-        lo, hi = box[0] - settings.margin_mm, box[1] + settings.margin_mm
-        # Crop a little wider than needed, so that the Gaussian's edge effects stay outside
-        # what the metric samples.
-        apron = max(settings.smoothing_sigmas_mm, default=0.0) * 2.0
-        cropped = _crop_to_box(base, lo - apron, hi + apron, _MIN_CROP_VOXELS)
-        if cropped is None or _crop_index(base, lo, hi, _MIN_CROP_VOXELS) is None:
-            return None
-        base, wide = cropped, (lo, hi)
+) -> _AnchorPyramid:
+    """The cropped anchor (:func:`_anchor_crop`; smoothing a whole 1 mm head is the slow part)
+    in float32, smoothed once per level."""
+    base = sitk.Cast(crop, sitk.sitkFloat32)
     levels = tuple(_smoothed(base, sigma, threads) for sigma in settings.smoothing_sigmas_mm)
     return _AnchorPyramid(base=base, levels=levels, box=wide)
 
 
 def _anchor_key(
-    fixed: sitk.Image, box: tuple[np.ndarray, np.ndarray] | None, settings: AlignmentSettings
+    crop: sitk.Image, box: tuple[np.ndarray, np.ndarray] | None, settings: AlignmentSettings
 ) -> tuple[Hashable, ...]:
-    """What the anchor pyramid depends on: the anchor's voxels (a digest, not the object's
-    identity, so a reloaded anchor hits too and a changed one misses), its geometry and pixel
-    type, the box and the settings."""
-    voxels = sitk.GetArrayViewFromImage(fixed)
+    """What the anchor pyramid depends on: the cropped anchor's voxels (a digest, not the
+    object's identity, so a reloaded anchor hits too and a changed one misses; only the crop,
+    so the cost does not grow with the anchor's size), its geometry and pixel type, the box
+    and the settings."""
+    voxels = sitk.GetArrayViewFromImage(crop)
     digest = hashlib.blake2b(np.ascontiguousarray(voxels).data, digest_size=16).hexdigest()
     geometry = (
-        fixed.GetSize(),
-        fixed.GetSpacing(),
-        fixed.GetOrigin(),
-        fixed.GetDirection(),
-        fixed.GetPixelID(),
-        fixed.GetNumberOfComponentsPerPixel(),
+        crop.GetSize(),
+        crop.GetSpacing(),
+        crop.GetOrigin(),
+        crop.GetDirection(),
+        crop.GetPixelID(),
+        crop.GetNumberOfComponentsPerPixel(),
     )
     box_key = None if box is None else (tuple(map(float, box[0])), tuple(map(float, box[1])))
     return (digest, geometry, box_key, settings)
@@ -349,21 +358,25 @@ def _anchor_key(
 # registering its series one at a time (to hold one series in memory at once) pays for the
 # anchor's smoothing once, not once per series.
 _ANCHOR_CACHE_SIZE = 2
-_ANCHOR_CACHE: OrderedDict[tuple[Hashable, ...], _AnchorPyramid | None] = OrderedDict()
+_ANCHOR_CACHE: OrderedDict[tuple[Hashable, ...], _AnchorPyramid] = OrderedDict()
 _ANCHOR_CACHE_LOCK = threading.Lock()
 
 
 def _cached_anchor_pyramid(
     fixed: sitk.Image, box: tuple[np.ndarray, np.ndarray] | None, settings: AlignmentSettings
 ) -> _AnchorPyramid | None:
-    key = _anchor_key(fixed, box, settings)
+    cropped = _anchor_crop(fixed, box, settings)
+    if cropped is None:
+        return None
+    crop, wide = cropped
+    key = _anchor_key(crop, box, settings)
     with _ANCHOR_CACHE_LOCK:
         if key in _ANCHOR_CACHE:
             _ANCHOR_CACHE.move_to_end(key)
             return _ANCHOR_CACHE[key]
     # Built outside the lock (it takes a fraction of a second); two callers racing on the
     # same anchor build the same pyramid, and either copy serves.
-    anchor = _anchor_pyramid(fixed, box, settings, threads=os.cpu_count() or 1)
+    anchor = _anchor_pyramid(crop, wide, settings, threads=os.cpu_count() or 1)
     with _ANCHOR_CACHE_LOCK:
         _ANCHOR_CACHE[key] = anchor
         _ANCHOR_CACHE.move_to_end(key)

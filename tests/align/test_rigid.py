@@ -297,9 +297,14 @@ def test_series_one_at_a_time_match_all_at_once_and_share_the_anchor(images, mon
     for key in movings:
         assert one_by_one[key].transform.GetParameters() == together[key].transform.GetParameters()
         assert one_by_one[key].metric == together[key].metric
-    # Another anchor (changed voxels) or another box misses.
-    changed = sitk.Image(t1)
-    changed[0, 0, 0] = 5.0
-    register_series(changed, {"moved": movings["moved"]}, box_mm=BOX)
+    # A change of the anchor outside the part registration uses (the box, its margin and the
+    # smoothing's apron) hits; a change inside it, or another box, misses.
+    far = sitk.Image(t1)
+    far[0, 0, 0] = 5.0  # a corner, 63 mm from the box centre on each axis
+    register_series(far, {"moved": movings["moved"]}, box_mm=BOX)
+    assert len(built) == 1
+    near = sitk.Image(t1)
+    near[32, 32, 32] = 5.0
+    register_series(near, {"moved": movings["moved"]}, box_mm=BOX)
     register_series(t1, {"moved": movings["moved"]}, box_mm=(BOX[0] - 1.0, BOX[1]))
     assert len(built) == 3
