@@ -12,8 +12,9 @@ Deterministic: one sampling strategy (RANDOM, a fixed fraction of the anchor cro
 with a fixed seed from the lexicon) and a fixed thread count, so the same pair gives the same
 answer on any machine.
 
-Speed (docs/performance.md): :func:`register_series` crops the anchor to the ROIs'
-neighbourhood and builds its smoothed pyramid once for all series, skips the optimizer for a
+Speed (docs/performance.md, Registration): :func:`register_series` crops the anchor to the
+ROIs' neighbourhood and builds its smoothed pyramid once for all series (and keeps it for the
+next calls, so series registered one call each share it), skips the optimizer for a
 series a cheap metric check finds already aligned, and registers the series in parallel threads
 (SimpleITK releases the GIL while ITK runs; each registration runs on one ITK thread, so the
 answers do not depend on the scheduling).
