@@ -5,6 +5,7 @@ study index -> series roles -> volumes -> ROIs -> [alignment] -> measurements
 
 from sigreport.align.rigid import (
     AlignmentSettings,
+    clear_anchor_cache,
     identity_alignment,
     load_settings,
     register_rigid,
@@ -14,6 +15,7 @@ from sigreport.align.rigid import (
 __all__ = [
     "register_rigid",
     "register_series",
+    "clear_anchor_cache",
     "identity_alignment",
     "AlignmentSettings",
     "load_settings",

@@ -12,8 +12,9 @@ Deterministic: one sampling strategy (RANDOM, a fixed fraction of the anchor cro
 with a fixed seed from the lexicon) and a fixed thread count, so the same pair gives the same
 answer on any machine.
 
-Speed (docs/performance.md): :func:`register_series` crops the anchor to the ROIs'
-neighbourhood and builds its smoothed pyramid once for all series, skips the optimizer for a
+Speed (docs/performance.md, Registration): :func:`register_series` crops the anchor to the
+ROIs' neighbourhood and builds its smoothed pyramid once for all series (and keeps it for the
+next calls, so series registered one call each share it), skips the optimizer for a
 series a cheap metric check finds already aligned, and registers the series in parallel threads
 (SimpleITK releases the GIL while ITK runs; each registration runs on one ITK thread, so the
 answers do not depend on the scheduling).
@@ -21,9 +22,11 @@ answers do not depend on the scheduling).
 
 from __future__ import annotations
 
+import hashlib
 import math
 import os
 import threading
+from collections import OrderedDict
 from collections.abc import Hashable, Iterator, Mapping
 from concurrent.futures import ThreadPoolExecutor
 from contextlib import contextmanager
@@ -41,6 +44,7 @@ from sigreport.model import Alignment
 __all__ = [
     "register_rigid",
     "register_series",
+    "clear_anchor_cache",
     "identity_alignment",
     "AlignmentSettings",
     "load_settings",
@@ -207,18 +211,34 @@ def _smoothed(image: sitk.Image, sigma_mm: float, threads: int = _THREADS) -> si
     """Gaussian smoothing in millimetres (none for sigma 0)."""
     if sigma_mm <= 0:
         return image
-    # Discrete (not recursive) Gaussian: the recursive filter is inaccurate when sigma is below
-    # the voxel spacing, as it is across the slices of a thick-slice series. Axes whose spacing
-    # is much coarser than sigma are left unsmoothed. A convolution computes each voxel on its
-    # own, so the result does not depend on the thread count.
-    variance = [
-        float(sigma_mm) ** 2 if spacing < 2.0 * sigma_mm else 0.0 for spacing in image.GetSpacing()
+    sigma = float(sigma_mm)
+    spacing = image.GetSpacing()
+    # Axes whose spacing is much coarser than sigma (across the slices of a thick-slice series)
+    # are left unsmoothed. Where sigma spans two voxels or more, ITK's recursive (IIR) Gaussian
+    # is accurate and costs the same whatever sigma (about four times less than a convolution
+    # at sigma 4 voxels); it is inaccurate below about one voxel (ITK's
+    # RecursiveGaussianImageFilter documentation), so the axes in between get the discrete
+    # (convolution) Gaussian. Both compute each voxel on its own, so the result does not depend
+    # on the thread count.
+    recursive = [axis for axis, step in enumerate(spacing) if sigma >= 2.0 * step]
+    discrete = [
+        sigma**2 if step < 2.0 * sigma and axis not in recursive else 0.0
+        for axis, step in enumerate(spacing)
     ]
-    smoother = sitk.DiscreteGaussianImageFilter()
-    smoother.SetVariance(variance)
-    smoother.SetUseImageSpacing(True)
-    smoother.SetNumberOfThreads(threads)
-    return smoother.Execute(image)
+    out = image
+    if any(discrete):
+        smoother = sitk.DiscreteGaussianImageFilter()
+        smoother.SetVariance(discrete)
+        smoother.SetUseImageSpacing(True)
+        smoother.SetNumberOfThreads(threads)
+        out = smoother.Execute(out)
+    for axis in recursive:
+        along = sitk.RecursiveGaussianImageFilter()
+        along.SetSigma(sigma)
+        along.SetDirection(axis)
+        along.SetNumberOfThreads(threads)
+        out = along.Execute(out)
+    return out
 
 
 def _physical_bounds(image: sitk.Image) -> tuple[np.ndarray, np.ndarray]:
@@ -283,27 +303,94 @@ class _AnchorPyramid:
     box: tuple[np.ndarray, np.ndarray] | None  # the box with its margin; None: whole anchor
 
 
+def _anchor_crop(
+    fixed: sitk.Image, box: tuple[np.ndarray, np.ndarray] | None, settings: AlignmentSettings
+) -> tuple[sitk.Image, tuple[np.ndarray, np.ndarray] | None] | None:
+    """The part of the anchor the registration uses, in its own pixel type (the ROIs' box plus
+    the margin, plus an apron for the smoothing), and the box with its margin; the whole anchor
+    and None without a box; None when the box misses the anchor."""
+    if box is None:
+        return fixed, None
+    lo, hi = box[0] - settings.margin_mm, box[1] + settings.margin_mm
+    # Crop a little wider than needed, so that the Gaussian's edge effects stay outside what
+    # the metric samples.
+    apron = max(settings.smoothing_sigmas_mm, default=0.0) * 2.0
+    cropped = _crop_to_box(fixed, lo - apron, hi + apron, _MIN_CROP_VOXELS)
+    if cropped is None or _crop_index(fixed, lo, hi, _MIN_CROP_VOXELS) is None:
+        return None
+    return cropped, (lo, hi)
+
+
 def _anchor_pyramid(
-    fixed: sitk.Image,
-    box: tuple[np.ndarray, np.ndarray] | None,
+    crop: sitk.Image,
+    wide: tuple[np.ndarray, np.ndarray] | None,
     settings: AlignmentSettings,
     threads: int,
-) -> _AnchorPyramid | None:
-    """Crop first (smoothing a whole 1 mm head is the slow part), then smooth each level.
-    None when the box misses the anchor."""
-    base = sitk.Cast(fixed, sitk.sitkFloat32)
-    wide = None
-    if box is not None:
-        lo, hi = box[0] - settings.margin_mm, box[1] + settings.margin_mm
-        # Crop a little wider than needed, so that the Gaussian's edge effects stay outside
-        # what the metric samples.
-        apron = max(settings.smoothing_sigmas_mm, default=0.0) * 2.0
-        cropped = _crop_to_box(base, lo - apron, hi + apron, _MIN_CROP_VOXELS)
-        if cropped is None or _crop_index(base, lo, hi, _MIN_CROP_VOXELS) is None:
-            return None
-        base, wide = cropped, (lo, hi)
+) -> _AnchorPyramid:
+    """The cropped anchor (:func:`_anchor_crop`; smoothing a whole 1 mm head is the slow part)
+    in float32, smoothed once per level."""
+    base = sitk.Cast(crop, sitk.sitkFloat32)
     levels = tuple(_smoothed(base, sigma, threads) for sigma in settings.smoothing_sigmas_mm)
     return _AnchorPyramid(base=base, levels=levels, box=wide)
+
+
+def _anchor_key(
+    crop: sitk.Image, box: tuple[np.ndarray, np.ndarray] | None, settings: AlignmentSettings
+) -> tuple[Hashable, ...]:
+    """What the anchor pyramid depends on: the cropped anchor's voxels (a digest, not the
+    object's identity, so a reloaded anchor hits too and a changed one misses; only the crop,
+    so the cost does not grow with the anchor's size), its geometry and pixel type, the box
+    and the settings."""
+    voxels = sitk.GetArrayViewFromImage(crop)
+    digest = hashlib.blake2b(np.ascontiguousarray(voxels).data, digest_size=16).hexdigest()
+    geometry = (
+        crop.GetSize(),
+        crop.GetSpacing(),
+        crop.GetOrigin(),
+        crop.GetDirection(),
+        crop.GetPixelID(),
+        crop.GetNumberOfComponentsPerPixel(),
+    )
+    box_key = None if box is None else (tuple(map(float, box[0])), tuple(map(float, box[1])))
+    return (digest, geometry, box_key, settings)
+
+
+# The last few anchor pyramids (each a few MB: crops of the anchor), so that a caller
+# registering its series one at a time (to hold one series in memory at once) pays for the
+# anchor's smoothing once, not once per series.
+_ANCHOR_CACHE_SIZE = 2
+_ANCHOR_CACHE: OrderedDict[tuple[Hashable, ...], _AnchorPyramid] = OrderedDict()
+_ANCHOR_CACHE_LOCK = threading.Lock()
+
+
+def _cached_anchor_pyramid(
+    fixed: sitk.Image, box: tuple[np.ndarray, np.ndarray] | None, settings: AlignmentSettings
+) -> _AnchorPyramid | None:
+    cropped = _anchor_crop(fixed, box, settings)
+    if cropped is None:
+        return None
+    crop, wide = cropped
+    key = _anchor_key(crop, box, settings)
+    with _ANCHOR_CACHE_LOCK:
+        if key in _ANCHOR_CACHE:
+            _ANCHOR_CACHE.move_to_end(key)
+            return _ANCHOR_CACHE[key]
+    # Built outside the lock (it takes a fraction of a second); two callers racing on the
+    # same anchor build the same pyramid, and either copy serves.
+    anchor = _anchor_pyramid(crop, wide, settings, threads=os.cpu_count() or 1)
+    with _ANCHOR_CACHE_LOCK:
+        _ANCHOR_CACHE[key] = anchor
+        _ANCHOR_CACHE.move_to_end(key)
+        while len(_ANCHOR_CACHE) > _ANCHOR_CACHE_SIZE:
+            _ANCHOR_CACHE.popitem(last=False)
+    return anchor
+
+
+def clear_anchor_cache() -> None:
+    """Forget the anchor pyramids :func:`register_series` keeps between calls (memory only;
+    results never depend on the cache)."""
+    with _ANCHOR_CACHE_LOCK:
+        _ANCHOR_CACHE.clear()
 
 
 def _registration_method(
@@ -417,8 +504,11 @@ def _register_prepared(
         base = sitk.RegionOfInterest(base, *region)
         levels = tuple(sitk.RegionOfInterest(level, *region) for level in levels)
         # The moving series only needs to cover where the anchor crop can land after a few mm
-        # of motion; cropping it keeps the pyramid's smoothing cheap on large series.
-        wide = settings.margin_mm + 2.0 * settings.max_translation_mm
+        # of motion (the box above already holds the margin), plus the smoothing's reach;
+        # cropping it keeps the pyramid's smoothing cheap on large series.
+        wide = 2.0 * settings.max_translation_mm + 2.0 * max(
+            settings.smoothing_sigmas_mm, default=0.0
+        )
         moving_crop = _crop_to_box(moving_f, lo - wide, hi + wide, _MIN_CROP_VOXELS)
         if moving_crop is not None:
             moving_f = moving_crop
@@ -579,6 +669,11 @@ def register_series(
     describes. Series run in parallel threads, each on one ITK thread, so the result is the
     same whatever the number of workers.
 
+    The anchor's pyramid is also kept between calls (the last two anchors, keyed by a digest
+    of the anchor's voxels, its geometry, the box and the settings), so calling this once per
+    series, e.g. to hold one series in memory at a time, builds it once and gives bitwise the
+    same alignments as one call for all series. :func:`clear_anchor_cache` frees it.
+
     Parameters
     ----------
     fixed : SimpleITK.Image
@@ -607,7 +702,7 @@ def register_series(
         return {}
     workers = max_workers if max_workers is not None else (os.cpu_count() or 1)
     workers = max(1, min(int(workers), len(movings)))
-    anchor = _anchor_pyramid(fixed, box, settings, threads=os.cpu_count() or 1)
+    anchor = _cached_anchor_pyramid(fixed, box, settings)
     if anchor is None:
         return {key: _OUTSIDE_ANCHOR for key in movings}
     # Some of ITK's registration components take their thread count from the global default,

@@ -15,7 +15,13 @@ import numpy as np
 import pytest
 import SimpleITK as sitk
 
-from sigreport.align import identity_alignment, load_settings, register_rigid, register_series
+from sigreport.align import (
+    identity_alignment,
+    load_settings,
+    register_rigid,
+    register_series,
+    rigid,
+)
 from sigreport.errors import InputError
 from sigreport.lexicon import bundled_dir
 
@@ -129,6 +135,38 @@ def test_small_motion_on_a_thick_slice_series(images):
     assert found.warnings == ()
 
 
+def test_known_motion_on_a_thick_slice_oblique_series(images):
+    t1, t2 = images
+    # A 2D oblique series: 1 mm in-plane, 5 mm slices, its slice plane tilted 15 degrees about
+    # the patient's left-right axis (direction cosines as in DICOM PS3.3 C.7.6.2.1.1: columns
+    # of the direction matrix are the row, column and slice directions in LPS).
+    tilt = math.radians(15.0)
+    direction = (
+        1.0,
+        0.0,
+        0.0,
+        0.0,
+        math.cos(tilt),
+        -math.sin(tilt),
+        0.0,
+        math.sin(tilt),
+        math.cos(tilt),
+    )
+    ref = sitk.Image(100, 100, 19, sitk.sitkFloat32)
+    ref.SetSpacing((1.0, 1.0, 5.0))
+    ref.SetDirection(direction)
+    # Centred on the phantom: origin = -(R @ half extent).
+    half = np.array([99 * 1.0, 99 * 1.0, 18 * 5.0]) / 2.0
+    ref.SetOrigin(tuple(float(v) for v in -(np.reshape(direction, (3, 3)) @ half)))
+    a = motion(1.5, -1.0, 2.0, (1.0, -1.5, 1.0))
+    moving = sitk.Resample(t2, ref, a, sitk.sitkLinear, 0.0)
+    found = register_rigid(t1, moving, box_mm=BOX)
+    assert found.method == "rigid" and found.notes == ()
+    assert max_point_error(found.transform, a.GetInverse()) < TOL_MM
+    assert rotation_error_deg(found.transform, a.GetInverse()) < TOL_DEG
+    assert found.warnings == ()
+
+
 def test_deterministic(images):
     t1, t2 = images
     moving = sitk.Resample(t2, t1, motion(1.0, 0.0, -1.0, (1.0, 0.5, 0.0)), sitk.sitkLinear, 0.0)
@@ -235,3 +273,38 @@ def test_register_series_outside_the_anchor_keeps_every_frame(images):
     assert all(
         a.method == "identity" and "outside the anchor" in a.warnings[0] for a in found.values()
     )
+
+
+def test_series_one_at_a_time_match_all_at_once_and_share_the_anchor(images, monkeypatch):
+    t1, t2 = images
+    movings = {
+        "moved": sitk.Resample(t2, t1, motion(1.0, 0.0, -2.0, (1.0, 1.0, -0.5)), sitk.sitkLinear),
+        "rotated": sitk.Resample(t1, t1, motion(0.0, 2.0, 0.0, (0.0, 0.5, 0.0)), sitk.sitkLinear),
+    }
+    together = register_series(t1, movings, box_mm=BOX)
+    built = []
+    real = rigid._anchor_pyramid
+    monkeypatch.setattr(
+        rigid, "_anchor_pyramid", lambda *args, **kwargs: built.append(1) or real(*args, **kwargs)
+    )
+    rigid.clear_anchor_cache()
+    # A fresh copy of the anchor (same voxels, another object) still hits the cache.
+    one_by_one = {
+        key: register_series(sitk.Image(t1), {key: image}, box_mm=BOX)[key]
+        for key, image in movings.items()
+    }
+    assert len(built) == 1
+    for key in movings:
+        assert one_by_one[key].transform.GetParameters() == together[key].transform.GetParameters()
+        assert one_by_one[key].metric == together[key].metric
+    # A change of the anchor outside the part registration uses (the box, its margin and the
+    # smoothing's apron) hits; a change inside it, or another box, misses.
+    far = sitk.Image(t1)
+    far[0, 0, 0] = 5.0  # a corner, 63 mm from the box centre on each axis
+    register_series(far, {"moved": movings["moved"]}, box_mm=BOX)
+    assert len(built) == 1
+    near = sitk.Image(t1)
+    near[32, 32, 32] = 5.0
+    register_series(near, {"moved": movings["moved"]}, box_mm=BOX)
+    register_series(t1, {"moved": movings["moved"]}, box_mm=(BOX[0] - 1.0, BOX[1]))
+    assert len(built) == 3
