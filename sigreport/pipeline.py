@@ -1303,20 +1303,16 @@ def _outlined(case: Case) -> set[str]:
 def _alignments_by_key(
     plan: ReportPlan, aligned: AlignedStudy, anchor_image: sitk.Image
 ) -> dict[str, Alignment]:
-    """The alignment to the anchor of each stack named by an ``at``, by stack key: from
-    ``aligned`` when it holds it, else (a series that is not measured) registered here like
-    the measured ones."""
-    known = {
+    """Each stack's alignment to the anchor by stack key: those ``aligned`` holds, and each
+    stack named by an ``at`` that it lacks (a series not measured, or not aligned yet),
+    registered here like the measured ones."""
+    by_key = {
         stack.key: aligned.alignments[role]
         for role, stack in plan.measured.items()
         if role in aligned.alignments
     }
-    known.update(aligned.phase_alignments)
-    by_key: dict[str, Alignment] = {}
-    for key in sorted(set(plan.viewer_keys.values())):
-        if key in known:
-            by_key[key] = known[key]
-            continue
+    by_key.update(aligned.phase_alignments)
+    for key in sorted(set(plan.viewer_keys.values()) - set(by_key)):
         stack = next(s for s in plan.index.stacks if s.key == key)
         other_frame = stack.frame_of_reference_uid != plan.anchor.frame_of_reference_uid
         by_key[key] = (

@@ -46,6 +46,21 @@ def _truncated_rayleigh_moments(a: float) -> tuple[float, float]:
     return m1, m2
 
 
+def median_in_place(values: np.ndarray) -> float:
+    """The median of a 1D array, as ``numpy.median`` gives it for the array in float64 (the
+    middle value, or the float64 mean of the middle two), without a float64 copy: ``values``
+    is partitioned in place (its order is lost)."""
+    n = values.size
+    if n == 0:
+        raise ValueError('Argument "values" must not be empty.')
+    half = n // 2
+    if n % 2:
+        values.partition(half)
+        return float(values[half])
+    values.partition((half - 1, half))
+    return float(np.mean(values[half - 1 : half + 1].astype(np.float64)))
+
+
 def noise_sigma(
     values: np.ndarray,
     *,
@@ -74,14 +89,22 @@ def noise_sigma(
     float or None
         Sigma in the image's units; None when no Rayleigh background can be found.
     """
-    v = np.asarray(values, dtype=np.float64).ravel()
-    v = v[np.isfinite(v) & (v > 0)]
-    if v.size < min_background_voxels:
+    # Filtered in the image's own type, then float64 (an exact conversion): a whole series is
+    # never copied to float64, and the median partitions the float32 copy in place.
+    flat = np.asarray(values).ravel()
+    keep = np.isfinite(flat)
+    keep &= flat > 0
+    compact = flat[keep]
+    del keep
+    if compact.size < min_background_voxels:
         return None
+    v = compact.astype(np.float64)
+    median = median_in_place(compact)
+    del compact
     m1, m2 = _truncated_rayleigh_moments(_A)
     expected_cv = math.sqrt(m2 - m1 * m1) / m1
 
-    dark = v[v <= np.median(v)]
+    dark = v[v <= median]
     top = float(dark.max())
     if top <= 0:
         return None

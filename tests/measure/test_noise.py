@@ -10,6 +10,7 @@ import numpy as np
 import pytest
 
 from sigreport.measure import noise_sigma
+from sigreport.measure.noise import median_in_place
 
 
 def _phantom(sigma: float, background_fraction: float, signal: float, seed: int = 0) -> np.ndarray:
@@ -70,3 +71,26 @@ def test_dark_tissue_next_to_the_background_does_not_inflate_sigma():
     clean[:, :, 40:] = 600.0
     image = np.abs(clean + rng.normal(0, sigma, shape) + 1j * rng.normal(0, sigma, shape))
     assert noise_sigma(image) == pytest.approx(sigma, rel=0.05)
+
+
+@pytest.mark.parametrize("n", [1, 2, 7, 8, 1001, 1000])
+@pytest.mark.parametrize("dtype", [np.float32, np.float64, np.int16])
+def test_median_in_place_is_numpys_median_in_float64(n, dtype):
+    # numpy.median of the float64 values is the oracle, to the last bit; duplicates included.
+    rng = np.random.default_rng(n)
+    values = (rng.normal(100.0, 30.0, n) * 7.3).astype(dtype)
+    values[: n // 3] = values[-1]
+    want = np.median(values.astype(np.float64))
+    assert median_in_place(values.copy()) == want
+    with pytest.raises(ValueError, match='"values" must not be empty'):
+        median_in_place(np.zeros(0, dtype=dtype))
+
+
+def test_a_float32_series_gives_the_sigma_of_its_float64_copy():
+    # The estimate reads the series in its own type (no float64 copy of the whole series): the
+    # same voxels in float64 must give the same double.
+    image = _phantom(9.0, 0.5, 700.0, seed=7).astype(np.float32)
+    image[0, 0, :5] = np.nan
+    image[1, 0, :5] = 0.0
+    assert noise_sigma(image) == noise_sigma(image.astype(np.float64))
+    assert noise_sigma(image) is not None
