@@ -61,6 +61,13 @@ def median_in_place(values: np.ndarray) -> float:
     return float(np.mean(values[half - 1 : half + 1].astype(np.float64)))
 
 
+def _below(values: np.ndarray, limit: float, *, inclusive: bool = False) -> np.ndarray:
+    """``values < limit`` (``<=`` when ``inclusive``) compared in float64 whatever the type of
+    ``values``: a float32 comparison would round ``limit`` to float32 first."""
+    compare = np.less_equal if inclusive else np.less
+    return compare(values, limit, signature=(np.float64, np.float64, np.bool_))
+
+
 def noise_sigma(
     values: np.ndarray,
     *,
@@ -89,40 +96,43 @@ def noise_sigma(
     float or None
         Sigma in the image's units; None when no Rayleigh background can be found.
     """
-    # Filtered in the image's own type, then float64 (an exact conversion): a whole series is
-    # never copied to float64, and the median partitions the float32 copy in place.
+    # The voxels stay in the image's own type (float32 for a loaded series) and only the
+    # subsets each step reads are made float64, an exact conversion; every comparison runs in
+    # float64 (_below). The values are those of the whole image in float64, at a fraction of
+    # the memory of a float64 copy.
     flat = np.asarray(values).ravel()
     keep = np.isfinite(flat)
     keep &= flat > 0
-    compact = flat[keep]
+    v = flat[keep]
     del keep
-    if compact.size < min_background_voxels:
+    if v.size < min_background_voxels:
         return None
-    v = compact.astype(np.float64)
-    median = median_in_place(compact)
-    del compact
+    median = median_in_place(v.copy())
     m1, m2 = _truncated_rayleigh_moments(_A)
     expected_cv = math.sqrt(m2 - m1 * m1) / m1
 
-    dark = v[v <= median]
+    dark = v[_below(v, median, inclusive=True)].astype(np.float64)
     top = float(dark.max())
     if top <= 0:
         return None
     counts, edges = np.histogram(dark, bins=128, range=(0.0, top))
+    del dark
     peak = int(np.argmax(counts))
     sigma = max(0.5 * (edges[peak] + edges[peak + 1]), edges[1] - edges[0])
 
     for _ in range(max_iterations):
-        selected = v[v < _A * sigma]
+        selected = v[_below(v, _A * sigma)].astype(np.float64)
         if selected.size == 0:
             return None
-        new = math.sqrt(float(np.mean(selected * selected)) / m2)
+        np.multiply(selected, selected, out=selected)
+        new = math.sqrt(float(np.mean(selected)) / m2)
+        del selected
         converged = abs(new - sigma) <= 1e-6 * sigma
         sigma = new
         if converged:
             break
 
-    selected = v[v < _A * sigma]
+    selected = v[_below(v, _A * sigma)].astype(np.float64)
     if selected.size < max(min_background_voxels, min_background_fraction * v.size):
         return None
     cv = float(selected.std() / selected.mean())
