@@ -65,7 +65,7 @@ def _below(values: np.ndarray, limit: float, *, inclusive: bool = False) -> np.n
     """``values < limit`` (``<=`` when ``inclusive``) compared in float64 whatever the type of
     ``values``: a float32 comparison would round ``limit`` to float32 first."""
     compare = np.less_equal if inclusive else np.less
-    return compare(values, limit, signature=(np.float64, np.float64, np.bool_))
+    return compare(values, limit, signature="dd->?")
 
 
 def noise_sigma(
