@@ -68,6 +68,35 @@ def _below(values: np.ndarray, limit: float, *, inclusive: bool = False) -> np.n
     return compare(values, limit, signature="dd->?")
 
 
+# Voxels gathered per block (bounds the image-type copy of a block to 16 MiB of float32).
+_BLOCK = 1 << 22
+
+
+def _gather(
+    flat: np.ndarray, keep: np.ndarray, limit: float, *, inclusive: bool = False
+) -> np.ndarray:
+    """The kept voxels below ``limit`` (:func:`_below`), as float64 in the image's order,
+    gathered a block at a time: no copy of the whole image in its type besides the result."""
+    mask = _below(flat, limit, inclusive=inclusive)
+    mask &= keep
+    out = np.empty(int(np.count_nonzero(mask)), dtype=np.float64)
+    filled = 0
+    for start in range(0, flat.size, _BLOCK):
+        part = flat[start : start + _BLOCK][mask[start : start + _BLOCK]]
+        out[filled : filled + part.size] = part
+        filled += part.size
+    return out
+
+
+def _std_in_place(values: np.ndarray, mean: float) -> float:
+    """``numpy.std(values)`` (population) given ``numpy.mean(values)``, the deviations squared
+    in ``values`` itself as numpy squares them in a copy: the same double, without the copy
+    (``values`` is overwritten)."""
+    np.subtract(values, mean, out=values)
+    np.square(values, out=values)
+    return math.sqrt(float(np.sum(values)) / values.size)
+
+
 def noise_sigma(
     values: np.ndarray,
     *,
@@ -96,22 +125,21 @@ def noise_sigma(
     float or None
         Sigma in the image's units; None when no Rayleigh background can be found.
     """
-    # The voxels stay in the image's own type (float32 for a loaded series) and only the
-    # subsets each step reads are made float64, an exact conversion; every comparison runs in
-    # float64 (_below). The values are those of the whole image in float64, at a fraction of
-    # the memory of a float64 copy.
+    # The image is read in its own type (float32 for a loaded series) and never copied whole:
+    # each step gathers the voxels it reads as float64 (an exact conversion), in the image's
+    # order, and compares in float64 (_below), so every value is the one a float64 copy of the
+    # whole image would give.
     flat = np.asarray(values).ravel()
     keep = np.isfinite(flat)
     keep &= flat > 0
-    v = flat[keep]
-    del keep
-    if v.size < min_background_voxels:
+    n = int(np.count_nonzero(keep))
+    if n < min_background_voxels:
         return None
-    median = median_in_place(v.copy())
+    median = median_in_place(flat[keep])
     m1, m2 = _truncated_rayleigh_moments(_A)
     expected_cv = math.sqrt(m2 - m1 * m1) / m1
 
-    dark = v[_below(v, median, inclusive=True)].astype(np.float64)
+    dark = _gather(flat, keep, median, inclusive=True)
     top = float(dark.max())
     if top <= 0:
         return None
@@ -121,7 +149,7 @@ def noise_sigma(
     sigma = max(0.5 * (edges[peak] + edges[peak + 1]), edges[1] - edges[0])
 
     for _ in range(max_iterations):
-        selected = v[_below(v, _A * sigma)].astype(np.float64)
+        selected = _gather(flat, keep, _A * sigma)
         if selected.size == 0:
             return None
         np.multiply(selected, selected, out=selected)
@@ -132,10 +160,11 @@ def noise_sigma(
         if converged:
             break
 
-    selected = v[_below(v, _A * sigma)].astype(np.float64)
-    if selected.size < max(min_background_voxels, min_background_fraction * v.size):
+    selected = _gather(flat, keep, _A * sigma)
+    if selected.size < max(min_background_voxels, min_background_fraction * n):
         return None
-    cv = float(selected.std() / selected.mean())
+    mean = float(np.mean(selected))
+    cv = _std_in_place(selected, mean) / mean
     if abs(cv - expected_cv) > cv_tolerance * expected_cv:
         return None
     return float(sigma)
