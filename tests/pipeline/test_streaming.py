@@ -6,6 +6,8 @@ run must conclude exactly what the stages run on every series at once conclude."
 from __future__ import annotations
 
 import json
+import os
+import platform
 import weakref
 from pathlib import Path
 
@@ -16,6 +18,7 @@ import sigreport.pipeline as pipeline
 from sigreport import limits
 from sigreport.ingest import load_stack
 from sigreport.lexicon_tables import load_lexicon
+from sigreport.memory import release_free_memory, use_one_heap
 from sigreport.model import Role
 from sigreport.pipeline import (
     align_series,
@@ -147,3 +150,23 @@ def test_two_small_series_register_side_by_side_and_a_large_one_alone(
     findings, slices = _at_once(case_path)
     _same(paired, findings, slices)
     _same(alone, findings, slices)
+
+
+def _resident_mb() -> float:
+    with open("/proc/self/statm") as handle:
+        return int(handle.read().split()[1]) * os.sysconf("SC_PAGE_SIZE") / 2**20
+
+
+@pytest.mark.skipif(platform.libc_ver()[0] != "glibc", reason="glibc's allocator calls")
+def test_freed_memory_goes_back_to_the_system_between_series():
+    # 48 MiB in 64 KiB blocks (below glibc's mmap threshold: they live in the heap), the last
+    # one kept so that the heap cannot shrink from its top by itself (mallopt(3),
+    # malloc_trim(3)): the freed pages stay resident until they are released.
+    blocks = [np.ones(8192) for _ in range(768)]
+    last = blocks[-1]
+    del blocks
+    before = _resident_mb()
+    assert release_free_memory() is True
+    assert before - _resident_mb() > 24.0
+    assert last.sum() == 8192.0
+    assert use_one_heap() is True
