@@ -6,7 +6,8 @@ file holds and against these ceilings *before* anything of that size is allocate
 above any clinical MR study (common practice: MR matrices are at most 1024 per side, a 3D series
 a few hundred slices) and low enough that a hostile file cannot drive one run past about 1 GB.
 They are safety limits of the program, not reading thresholds, so they live here and not in the
-site lexicon; docs/ingestion.md lists them.
+site lexicon; docs/ingestion.md lists them. The last two bound how much of a study a report
+holds at once (docs/performance.md, Memory).
 """
 
 from __future__ import annotations
