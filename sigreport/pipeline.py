@@ -1104,7 +1104,7 @@ def analyze_case(
     box = union_bounds(plan.regions)
     # The anchor first, then reading order: the order a reference's key slice is looked for.
     ordered = [by_key[role] for role in display_order(plan.measured, plan.anchor_role)]
-    ordered += [job for job in jobs if not isinstance(job.key, Role)]
+    ordered += [job for job in jobs if job not in ordered]
     # Series named by an `at` are aligned before the ROIs are placed (docs/rois.md), then
     # streamed again for measurement with the alignment found.
     named = set(plan.viewer_keys.values())
