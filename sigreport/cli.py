@@ -21,6 +21,7 @@ from rich.text import Text
 
 from sigreport import __version__
 from sigreport.errors import InputError
+from sigreport.memory import use_one_heap
 from sigreport.model import Progress
 from sigreport.safetext import terminal_text
 
@@ -176,6 +177,9 @@ def _root(
     ] = False,
 ) -> None:
     """Signal-behaviour tables and draft reports for lesions on a DICOM MR study."""
+    # One allocator heap for the registration threads too: freed memory is reused, not kept
+    # per thread (sigreport.memory; docs/performance.md, Memory).
+    use_one_heap()
 
 
 @app.command()

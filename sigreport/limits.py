@@ -6,7 +6,8 @@ file holds and against these ceilings *before* anything of that size is allocate
 above any clinical MR study (common practice: MR matrices are at most 1024 per side, a 3D series
 a few hundred slices) and low enough that a hostile file cannot drive one run past about 1 GB.
 They are safety limits of the program, not reading thresholds, so they live here and not in the
-site lexicon; docs/ingestion.md lists them.
+site lexicon; docs/ingestion.md lists them. The last two bound how much of a study a report
+holds at once (docs/performance.md, Memory).
 """
 
 from __future__ import annotations
@@ -31,3 +32,9 @@ MAX_DEFLATED_BYTES = 256 * 1024**2
 # A case file: ROIs, and the largest radius / semi-axis / box edge of an analytic ROI (mm).
 MAX_ROIS = 200
 MAX_ROI_EXTENT_MM = 500.0
+# Series a report holds loaded besides the anchor while it streams the study through
+# (sigreport.pipeline.stream_series): two register in parallel (one per core) when their float32
+# pixels together fit SERIES_WINDOW_BYTES; a larger series is loaded, registered and measured
+# alone, so a long series costs its own size and no more.
+SERIES_IN_FLIGHT = 2
+SERIES_WINDOW_BYTES = 64 * 1024**2

@@ -15,8 +15,6 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any, Protocol
 
 if TYPE_CHECKING:  # types only: these modules build on this one
-    import SimpleITK as sitk
-
     from sigreport.lexicon_tables import Lexicon
     from sigreport.rois.propagate import RoiSample
     from sigreport.rois.space import Region
@@ -612,24 +610,57 @@ class StudyMeasurement:
 
 
 @dataclass(frozen=True)
+class SeriesJob:
+    """One series a run aligns and measures (``pipeline.series_jobs``).
+
+    ``key`` is the role of a measured series, or the ``Stack.key`` (a plain str) of a dynamic
+    phase other than its role's measured one; ``name`` is how notes and progress call it.
+    """
+
+    key: Role | str
+    stack: Stack
+    role: Role
+    name: str
+
+
+@dataclass(frozen=True)
+class MeasuredSeries:
+    """What one series leaves once its pixels are released (``pipeline.measure_series``).
+
+    ``rois`` holds each ROI measured on the series, by ROI id. For a measured series (not an
+    extra dynamic phase) also: ``samples``, each ROI's voxels on its grid; ``noise_sigma``;
+    ``sizes``, each ROI's (volume ml, largest diameter mm) when this is the finest series;
+    ``diameters``, each ROI's axial (long, short, craniocaudal) mm when this is the anchor;
+    ``key_slices``, the key slices it gives, by ROI id. ROIs without a voxel have no size,
+    diameters or key slice.
+    """
+
+    key: Role | str
+    rois: dict[str, SeriesMeasurement]
+    samples: dict[str, RoiSample] = field(default_factory=dict)
+    noise_sigma: float | None = None
+    sizes: dict[str, tuple[float, float]] = field(default_factory=dict)
+    diameters: dict[str, tuple[float, float, float]] = field(default_factory=dict)
+    key_slices: dict[str, KeySlice] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
 class Analysis:
     """Everything the job concludes, before anything is written (``pipeline.analyze_case``).
 
     ``findings`` is the findings.json object; ``key_slices`` the key images' slices; ``phrases``
     the wording characterization chose per lesion id; ``stacks`` the measured stack per role.
-    The intermediate stages' outputs are kept for callers that compare or re-use them.
+    The intermediate stages' outputs are kept for callers that compare or re-use them; the
+    series' pixels are not (they were released as the series streamed through).
     """
 
     findings: dict[str, Any]
     key_slices: tuple[KeySlice, ...]
     phrases: dict[str, LesionPhrases]
     plan: ReportPlan
-    images: dict[Role, sitk.Image]
     aligned: AlignedStudy
     measurement: StudyMeasurement
     files: dict[str, bytes] = field(default_factory=dict)  # OUTDIR-relative, e.g. rois/<id>.nii.gz
-    # Dynamic phases other than the measured one of their role, keyed by Stack.key.
-    phase_images: dict[str, sitk.Image] = field(default_factory=dict)
 
     @property
     def stacks(self) -> dict[Role, Stack]:

@@ -6,21 +6,26 @@ subpackage) that takes the plain data (``sigreport.model``) of the stages before
     plan_report    case file + lexicon -> study index, roles, measured series, ROIs, anchor
     load_series    the measured series' pixels (SimpleITK images, patient space)
     align_series   each series' rigid alignment to the anchor
+    place_rois     viewer positions, seeds, mirror references placed on the anchor
     measure_study  every ROI sampled and measured on every series (+ noise floor)
     characterize   ratios, grades, pairs, controls, behaviour       (sigreport.measure)
     build_findings, build_key_slices   findings.json object and key images   (sigreport.report)
     write_report   the report folder, atomically                     (sigreport.report)
 
 :func:`analyze_case` runs every stage up to the findings and writes nothing (for a batch runner,
-a comparison with a prior study, a server); :func:`run_report` adds the report folder. This
-module also chooses what to measure and collects the ``qc`` notes those choices produce.
-Nothing is guessed silently: a doubtful role, a large registration, a missing series each leave
-a note. The contract is docs/usage.md.
+a comparison with a prior study, a server); :func:`run_report` adds the report folder. It does
+not hold every series at once: the anchor stays loaded, and the other series stream through
+(:func:`stream_series`), each loaded, aligned, measured and cut into its key slices
+(:func:`measure_series`) and released before the next; the stage functions above, which take
+every series at once, give the same results. This module also chooses what to measure and
+collects the ``qc`` notes those choices produce. Nothing is guessed silently: a doubtful role,
+a large registration, a missing series each leave a note. The contract is docs/usage.md.
 """
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+import os
+from collections.abc import Callable, Container, Mapping, Sequence
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
@@ -28,13 +33,20 @@ from typing import Any
 import numpy as np
 import SimpleITK as sitk
 
-from sigreport.align import identity_alignment, register_rigid, register_series
+from sigreport import limits
+from sigreport.align import (
+    clear_anchor_cache,
+    identity_alignment,
+    register_rigid,
+    register_series,
+)
 from sigreport.errors import InputError
 from sigreport.ingest import index_study, load_stack
 from sigreport.ingest.explain import skipped_series_summary, why_absent
 from sigreport.lexicon_tables import Lexicon, load_lexicon
 from sigreport.measure import Characterization, characterize, measure_roi, noise_sigma
 from sigreport.measure.change import interval_change, with_interval_change
+from sigreport.memory import release_free_memory
 from sigreport.model import (
     PRE_CONTRAST_OF,
     ROLE_ORDER,
@@ -43,6 +55,7 @@ from sigreport.model import (
     Analysis,
     Case,
     MeasuredRoi,
+    MeasuredSeries,
     MeasuredStudy,
     Progress,
     QcLevel,
@@ -50,8 +63,8 @@ from sigreport.model import (
     ReportPlan,
     RoiKind,
     RoiShape,
-    RoiSpec,
     Role,
+    SeriesJob,
     SeriesMeasurement,
     Stack,
     StudyIndex,
@@ -61,10 +74,10 @@ from sigreport.model import (
 from sigreport.report import (
     FINDINGS_SCHEMA,
     build_findings,
-    build_key_slices,
     lesion_phrases,
     write_report,
 )
+from sigreport.report.keyslices import arrange_key_slices, display_order, series_key_slices
 from sigreport.report.outdir import check_outdir, report_inputs
 from sigreport.rois import (
     RoiSample,
@@ -97,12 +110,15 @@ __all__ = [
     "choose_phases",
     "load_phases",
     "load_series",
+    "measure_series",
     "measure_study",
     "override_notes",
     "place_rois",
     "plan_report",
     "resolve_study_dir",
     "run_report",
+    "series_jobs",
+    "stream_series",
 ]
 
 # Below this confidence an inferred role is reported as doubtful in qc.
@@ -574,7 +590,10 @@ def plan_report(
 
 def load_series(plan: ReportPlan, *, progress: Progress | None = None) -> dict[Role, sitk.Image]:
     """The pixels of each measured series: float32, rescaled, in DICOM patient space (LPS)
-    (:func:`sigreport.ingest.load_stack`), in the plan's role order."""
+    (:func:`sigreport.ingest.load_stack`), in the plan's role order.
+
+    Every series at once: for the stages run one by one (tests, tools). :func:`analyze_case`
+    streams the series instead (:func:`stream_series`)."""
     images: dict[Role, sitk.Image] = {}
     total = len(plan.measured)
     for done, (role, stack) in enumerate(plan.measured.items()):
@@ -604,6 +623,78 @@ def _extra_phases(plan: ReportPlan) -> list[Stack]:
     return [s for group in plan.phases.values() for s in group if s.key not in measured]
 
 
+def _loading_message(job: SeriesJob) -> str:
+    if isinstance(job.key, Role):
+        return f"loading {job.key.value}: {_series_name(job.stack)}"
+    return f"loading phase {job.stack.dynamic_phase}: {_series_name(job.stack)}"
+
+
+def series_jobs(plan: ReportPlan, phase_keys: Container[str] | None = None) -> list[SeriesJob]:
+    """Every series a run aligns and measures: the measured series (the plan's reading order),
+    then the dynamic phases other than their role's measured one (phase order); ``phase_keys``
+    keeps only the phases named."""
+    jobs = [SeriesJob(role, stack, role, role.value) for role, stack in plan.measured.items()]
+    jobs += [
+        SeriesJob(s.key, s, s.role, f"{s.role.value} phase {s.dynamic_phase}")
+        for s in _extra_phases(plan)
+        if phase_keys is None or s.key in phase_keys
+    ]
+    return jobs
+
+
+def _scanner_alignment(plan: ReportPlan, job: SeriesJob) -> tuple[Alignment | None, bool]:
+    """The alignment a series gets without registration (identity for the anchor; the frame of
+    reference when registration is off and the series shares the anchor's), or None when it
+    must be registered; and whether it is in another frame of reference than the anchor."""
+    if job.key is plan.anchor_role:
+        return identity_alignment("identity"), False
+    anchor = plan.anchor
+    other_frame = (
+        job.stack.frame_of_reference_uid is not None
+        and anchor.frame_of_reference_uid is not None
+        and job.stack.frame_of_reference_uid != anchor.frame_of_reference_uid
+    )
+    if plan.register or other_frame:
+        return None, other_frame
+    return identity_alignment("frame-of-reference"), False
+
+
+def _aligned_study(
+    plan: ReportPlan,
+    jobs: Sequence[SeriesJob],
+    found: Mapping[Role | str, Alignment],
+    box: tuple[np.ndarray, np.ndarray],
+) -> AlignedStudy:
+    """Each series' alignment with its displacement at the ROIs, and the notes registration
+    left, in the order of ``jobs``."""
+    alignments: dict[Role, Alignment] = {}
+    phase_alignments: dict[str, Alignment] = {}
+    qc: list[QcNote] = []
+    for job in jobs:
+        # How far each series moved at the ROIs (docs/measurements.md, displacement_mm).
+        alignment = replace(found[job.key], displacement_mm=_box_displacement(found[job.key], box))
+        if isinstance(job.key, Role):
+            alignments[job.key] = alignment
+        else:
+            phase_alignments[job.key] = alignment
+        if _scanner_alignment(plan, job)[1] and not plan.register:
+            qc.append(
+                QcNote(
+                    QcLevel.INFO,
+                    "registered-other-frame",
+                    f"{job.name} is in another frame of reference than the anchor; registered despite --no-register",
+                )
+            )
+        qc.extend(
+            QcNote(QcLevel.WARNING, "registration", f"{job.name}: {w}") for w in alignment.warnings
+        )
+        qc.extend(
+            QcNote(QcLevel.INFO, "registration-skipped", f"{job.name}: {n}")
+            for n in alignment.notes
+        )
+    return AlignedStudy(alignments=alignments, qc=tuple(qc), phase_alignments=phase_alignments)
+
+
 def align_series(
     plan: ReportPlan,
     images: Mapping[Role, sitk.Image],
@@ -619,70 +710,151 @@ def align_series(
     ``phase_images`` (:func:`load_phases`) are aligned the same way, each on its own: a
     patient may move between the phases of a dynamic acquisition. Every series to register goes
     to one :func:`sigreport.align.register_series` call (the anchor's pyramid built once, the
-    series in parallel)."""
-    anchor = plan.anchor
-    settings = plan.lexicon.alignment
+    series in parallel). :func:`stream_series` aligns the same series a window at a time, with
+    the same results."""
+    phase_images = phase_images or {}
     # The ROIs' box; register_series adds the lexicon's margin of anatomy around it.
     box = union_bounds(plan.regions)
-    alignments: dict[Role, Alignment] = {}
-    phase_alignments: dict[str, Alignment] = {}
-    qc: list[QcNote] = []
-    phase_images = phase_images or {}
-    extra = [s for s in _extra_phases(plan) if s.key in phase_images]
-    # Keys: the role of a measured series, the stack key (a plain str) of an extra phase.
-    jobs: list[tuple[Role | str, Stack, sitk.Image, str]] = [
-        (role, stack, images[role], role.value) for role, stack in plan.measured.items()
-    ] + [(s.key, s, phase_images[s.key], f"{s.role.value} phase {s.dynamic_phase}") for s in extra]
-    names = {key: name for key, _, _, name in jobs}
-    to_register: dict[Role | str, sitk.Image] = {}
-    other_frames: set[Role | str] = set()
+    jobs = series_jobs(plan, phase_keys=phase_images.keys())
     found: dict[Role | str, Alignment] = {}
-    for key, stack, image, _ in jobs:
-        if key is plan.anchor_role:
-            found[key] = identity_alignment("identity")
-            continue
-        other_frame = (
-            stack.frame_of_reference_uid is not None
-            and anchor.frame_of_reference_uid is not None
-            and stack.frame_of_reference_uid != anchor.frame_of_reference_uid
-        )
-        if plan.register or other_frame:
-            to_register[key] = image
-            if other_frame:
-                other_frames.add(key)
+    to_register: dict[Role | str, sitk.Image] = {}
+    for job in jobs:
+        alignment, _ = _scanner_alignment(plan, job)
+        if alignment is not None:
+            found[job.key] = alignment
         else:
-            found[key] = identity_alignment("frame-of-reference")
+            to_register[job.key] = (
+                images[job.key] if isinstance(job.key, Role) else phase_images[job.key]
+            )
     if to_register:
+        names = {job.key: job.name for job in jobs}
         say(
             progress,
             f"registering {', '.join(names[k] for k in to_register)} to {plan.anchor_role.value}",
         )
         # One call: the anchor's pyramid is built once and the series run in parallel.
         found.update(
-            register_series(images[plan.anchor_role], to_register, box_mm=box, settings=settings)
+            register_series(
+                images[plan.anchor_role],
+                to_register,
+                box_mm=box,
+                settings=plan.lexicon.alignment,
+            )
         )
-    for key, _, _, name in jobs:
-        # How far each series moved at the ROIs (docs/measurements.md, displacement_mm).
-        alignment = replace(found[key], displacement_mm=_box_displacement(found[key], box))
-        if isinstance(key, Role):
-            alignments[key] = alignment
+    return _aligned_study(plan, jobs, found, box)
+
+
+def _series_bytes(stack: Stack) -> int:
+    """The loaded size of a stack's pixels (float32, :func:`sigreport.ingest.load_stack`)."""
+    columns, rows, slices = stack.size
+    return 4 * int(columns) * int(rows) * int(slices)
+
+
+def _windows(
+    plan: ReportPlan, jobs: Sequence[SeriesJob], known: Container[Role | str]
+) -> list[list[SeriesJob]]:
+    """``jobs`` in order, cut into the groups :func:`stream_series` holds at once: two
+    consecutive series that are both to be registered share a group (they register in
+    parallel) when the machine has two cores and their pixels together fit
+    ``limits.SERIES_WINDOW_BYTES``; every other series is alone."""
+    size = max(1, min(limits.SERIES_IN_FLIGHT, os.cpu_count() or 1))
+    windows: list[list[SeriesJob]] = []
+    for job in jobs:
+        registers = job.key not in known and _scanner_alignment(plan, job)[0] is None
+        last = windows[-1] if windows else None
+        if (
+            registers
+            and last is not None
+            and len(last) < size
+            and all(j.key not in known and _scanner_alignment(plan, j)[0] is None for j in last)
+            and sum(_series_bytes(j.stack) for j in (*last, job)) <= limits.SERIES_WINDOW_BYTES
+        ):
+            last.append(job)
         else:
-            phase_alignments[key] = alignment
-        if key in other_frames and not plan.register:
-            qc.append(
-                QcNote(
-                    QcLevel.INFO,
-                    "registered-other-frame",
-                    f"{name} is in another frame of reference than the anchor; registered despite --no-register",
+            windows.append([job])
+    return windows
+
+
+def stream_series(
+    plan: ReportPlan,
+    anchor_image: sitk.Image,
+    jobs: Sequence[SeriesJob],
+    visit: Callable[[SeriesJob, sitk.Image, Alignment], None] | None = None,
+    *,
+    box_mm: tuple[np.ndarray, np.ndarray],
+    known: Mapping[Role | str, Alignment] | None = None,
+    progress: Progress | None = None,
+) -> dict[Role | str, Alignment]:
+    """Load, align and visit the series of ``jobs`` a few at a time, releasing each before the
+    next are loaded: memory holds the anchor and at most one window of series
+    (``limits.SERIES_IN_FLIGHT`` series whose pixels together fit
+    ``limits.SERIES_WINDOW_BYTES``, else one), whatever the number of series or slices.
+
+    Parameters
+    ----------
+    plan
+        The plan (:func:`plan_report`); its ``regions`` are not read (see ``box_mm``).
+    anchor_image
+        The anchor series, loaded once by the caller; the anchor's job is visited with it.
+    jobs
+        The series to visit, in order (:func:`series_jobs`).
+    visit
+        Called once per series, while it is loaded, with its alignment to the anchor (without
+        its ``displacement_mm``); it must keep no reference to the image. None: align only.
+    box_mm
+        The ROIs' box registration works in (:func:`sigreport.align.register_series`): that
+        of the plan before the ROIs are placed, as :func:`align_series` takes it.
+    known
+        Alignments found earlier, by job key: those series are loaded and visited but not
+        registered again.
+    progress
+        Told about each series loaded and each registration.
+
+    Returns
+    -------
+    dict
+        Each job's alignment, by job key.
+    """
+    known = dict(known or {})
+    found: dict[Role | str, Alignment] = {}
+    total = len(jobs)
+    done = 0
+    for window in _windows(plan, jobs, known):
+        loaded: dict[Role | str, sitk.Image] = {}
+        for job in window:
+            if job.key is plan.anchor_role:
+                loaded[job.key] = anchor_image
+            else:
+                say(progress, _loading_message(job), done, total)
+                loaded[job.key] = load_stack(job.stack, study_dir=plan.index.study_dir)
+            done += 1
+        to_register: dict[Role | str, sitk.Image] = {}
+        for job in window:
+            alignment = known.get(job.key)
+            if alignment is None:
+                alignment = _scanner_alignment(plan, job)[0]
+            if alignment is None:
+                to_register[job.key] = loaded[job.key]
+            else:
+                found[job.key] = alignment
+        if to_register:
+            names = ", ".join(j.name for j in window if j.key in to_register)
+            say(progress, f"registering {names} to {plan.anchor_role.value}")
+            # Repeated calls share the anchor's prepared pyramid (sigreport.align).
+            found.update(
+                register_series(
+                    anchor_image, to_register, box_mm=box_mm, settings=plan.lexicon.alignment
                 )
             )
-        qc.extend(
-            QcNote(QcLevel.WARNING, "registration", f"{name}: {w}") for w in alignment.warnings
-        )
-        qc.extend(
-            QcNote(QcLevel.INFO, "registration-skipped", f"{name}: {n}") for n in alignment.notes
-        )
-    return AlignedStudy(alignments=alignments, qc=tuple(qc), phase_alignments=phase_alignments)
+            to_register.clear()
+        if visit is not None:
+            for job in window:
+                visit(job, loaded[job.key], found[job.key])
+        loaded.clear()
+        # What the series and their registration freed goes back to the system before the
+        # next series is read (sigreport.memory).
+        release_free_memory()
+    return found
 
 
 def place_rois(
@@ -695,7 +867,10 @@ def place_rois(
     """Finish the ROIs in the anchor's space once the series are aligned (docs/rois.md): viewer
     positions carried through their series' alignment, seeds grown on the anchor, mirror
     references placed, laterality checked. Returns the plan with the final case and regions,
-    and what was placed (its qc notes and the grown lesions' files for OUTDIR)."""
+    and what was placed (its qc notes and the grown lesions' files for OUTDIR).
+
+    Only the anchor of ``images`` is read, and of ``aligned`` only the series named by an
+    ``at`` (a series it lacks is loaded and aligned here)."""
     say(progress, "placing the ROIs")
     anchor_image = images[plan.anchor_role]
     rules = plan.lexicon.rules
@@ -726,6 +901,107 @@ def _box_displacement(alignment: Alignment, box: tuple[np.ndarray, np.ndarray]) 
     )
 
 
+def measure_series(
+    plan: ReportPlan,
+    job: SeriesJob,
+    image: sitk.Image,
+    alignment: Alignment,
+    *,
+    key_slices: bool = False,
+    skip: Container[str] = (),
+) -> MeasuredSeries:
+    """Every ROI sampled and measured on one series, through its alignment; and, for a
+    measured series, what later stages need of its pixels, so that they may be released: the
+    noise floor, the samples, the ROIs' size on the finest series and their axial diameters on
+    the anchor, and (``key_slices``) the key slices it gives (``skip``: as
+    :func:`sigreport.report.keyslices.series_key_slices`).
+
+    The ROIs are the plan's final ones (:func:`place_rois`). Measurement reads each ROI's box
+    only (the sample is kept to it).
+    """
+    rules = plan.lexicon.rules
+    min_voxels = int(rules.min_voxels)
+    measured = isinstance(job.key, Role)
+    finest_role = min(plan.measured, key=lambda r: plan.measured[r].voxel_volume_mm3)
+    transform = alignment.transform
+    to_region_space = transform.GetInverse() if transform is not None else None
+    values = sitk.GetArrayViewFromImage(image)
+    rois: dict[str, SeriesMeasurement] = {}
+    samples: dict[str, RoiSample] = {}
+    sizes: dict[str, tuple[float, float]] = {}
+    diameters: dict[str, tuple[float, float, float]] = {}
+    for spec, region in zip(plan.case.rois, plan.regions, strict=True):
+        sample = sample_region(region, image, to_region_space=to_region_space)
+        rois[spec.id] = measure_roi(
+            values[sample.box],
+            sample.box_mask,
+            sample.box_weights,
+            image.GetSpacing(),
+            lesion=spec.kind is RoiKind.LESION,
+            min_voxels=min_voxels,
+            rules=rules,
+            roi_id=spec.id,
+            role=job.role,
+        )
+        if not measured:
+            continue
+        samples[spec.id] = sample
+        if sample.n_voxels > 0 and job.key is finest_role:
+            sizes[spec.id] = (volume_ml(sample, image), max_diameter_mm(sample, image))
+        if sample.n_voxels > 0 and job.key is plan.anchor_role:
+            diameters[spec.id] = axial_diameters_mm(sample, image)
+    return MeasuredSeries(
+        key=job.key,
+        rois=rois,
+        samples=samples,
+        noise_sigma=noise_sigma(values) if measured else None,
+        sizes=sizes,
+        diameters=diameters,
+        key_slices=series_key_slices(plan.case, job.role, image, samples, job.stack, skip=skip)
+        if measured and key_slices
+        else {},
+    )
+
+
+def _study_measurement(
+    plan: ReportPlan, parts: Mapping[Role | str, MeasuredSeries], roles: Sequence[Role]
+) -> StudyMeasurement:
+    """The measured study from what each series left (:func:`measure_series`): each ROI on
+    every measured series (``roles``, in order) and every dynamic phase measured."""
+    finest_role = min(plan.measured, key=lambda r: plan.measured[r].voxel_volume_mm3)
+    samples: dict[tuple[str, Role], RoiSample] = {}
+    measured_rois: list[MeasuredRoi] = []
+    for spec in plan.case.rois:
+        by_role = {role: parts[role].rois[spec.id] for role in roles}
+        samples.update({(spec.id, role): parts[role].samples[spec.id] for role in roles})
+        by_phase: dict[str, SeriesMeasurement] = {}
+        for role, group in plan.phases.items():
+            for stack in group:
+                if stack.key == plan.measured[role].key:
+                    by_phase[stack.key] = by_role[role]
+                elif stack.key in parts:
+                    by_phase[stack.key] = parts[stack.key].rois[spec.id]
+        size = parts[finest_role].sizes.get(spec.id)
+        measured_rois.append(
+            MeasuredRoi(
+                spec=spec,
+                volume_ml=size[0] if size is not None else None,
+                max_diameter_mm=size[1] if size is not None else None,
+                by_role=by_role,
+                diameters_mm=parts[plan.anchor_role].diameters.get(spec.id),
+                by_phase=by_phase,
+            )
+        )
+    study = MeasuredStudy(
+        rois=tuple(measured_rois),
+        stacks=dict(plan.measured),
+        noise_sigma={role: parts[role].noise_sigma for role in roles},
+        phases=dict(plan.phases),
+    )
+    overlaps = _overlap_notes(plan.case, samples, plan.anchor_role)
+    return StudyMeasurement(study=study, samples=samples, qc=tuple(overlaps))
+
+
 def measure_study(
     plan: ReportPlan,
     images: Mapping[Role, sitk.Image],
@@ -739,110 +1015,28 @@ def measure_study(
     a dynamic acquisition is measured too (``phase_images``, :func:`load_phases`; the measured
     phase of a role is re-used, not sampled twice).
 
+    Every series at once (:func:`measure_series` on each); :func:`analyze_case` measures each
+    series while it streams through instead.
+
     Returns the measured study (the input of characterization), the samples (for the key
     images) and the qc notes of ROIs that share voxels with a lesion.
     """
-    rules = plan.lexicon.rules
-    min_voxels = int(rules.min_voxels)
-    measured = plan.measured
-    samples: dict[tuple[str, Role], RoiSample] = {}
-    measured_rois: list[MeasuredRoi] = []
-    finest_role = min(measured, key=lambda r: measured[r].voxel_volume_mm3)
-    noise: dict[Role, float | None] = {}
-    for role, image in images.items():
-        noise[role] = noise_sigma(sitk.GetArrayViewFromImage(image))
-    total = len(plan.case.rois)
-    for done, (spec, region) in enumerate(zip(plan.case.rois, plan.regions, strict=True)):
-        say(progress, f"measuring {spec.id}", done, total)
-        by_role: dict[Role, SeriesMeasurement] = {}
-        for role, image in images.items():
-            transform = aligned.alignments[role].transform
-            sample = sample_region(
-                region,
-                image,
-                to_region_space=transform.GetInverse() if transform is not None else None,
-            )
-            samples[(spec.id, role)] = sample
-            # Measured in the ROI's box only (the sample is kept to it).
-            by_role[role] = measure_roi(
-                sitk.GetArrayViewFromImage(image)[sample.box],
-                sample.box_mask,
-                sample.box_weights,
-                image.GetSpacing(),
-                lesion=spec.kind is RoiKind.LESION,
-                min_voxels=min_voxels,
-                rules=rules,
-                roi_id=spec.id,
-                role=role,
-            )
-        by_phase = _measure_phases(
-            plan, spec, region, by_role, aligned, phase_images or {}, min_voxels
-        )
-        finest = samples[(spec.id, finest_role)]
-        on_anchor = samples[(spec.id, plan.anchor_role)]
-        has_voxels = finest.n_voxels > 0
-        measured_rois.append(
-            MeasuredRoi(
-                spec=spec,
-                volume_ml=volume_ml(finest, images[finest_role]) if has_voxels else None,
-                max_diameter_mm=max_diameter_mm(finest, images[finest_role])
-                if has_voxels
-                else None,
-                by_role=by_role,
-                diameters_mm=axial_diameters_mm(on_anchor, images[plan.anchor_role])
-                if on_anchor.n_voxels > 0
-                else None,
-                by_phase=by_phase,
-            )
-        )
-    study = MeasuredStudy(
-        rois=tuple(measured_rois),
-        stacks=dict(measured),
-        noise_sigma=noise,
-        phases=dict(plan.phases),
-    )
-    overlaps = _overlap_notes(plan.case, samples, plan.anchor_role)
-    return StudyMeasurement(study=study, samples=samples, qc=tuple(overlaps))
-
-
-def _measure_phases(
-    plan: ReportPlan,
-    spec: RoiSpec,
-    region: Region,
-    by_role: Mapping[Role, SeriesMeasurement],
-    aligned: AlignedStudy,
-    phase_images: Mapping[str, sitk.Image],
-    min_voxels: int,
-) -> dict[str, SeriesMeasurement]:
-    """One ROI on every dynamic phase, keyed by ``Stack.key``."""
-    out: dict[str, SeriesMeasurement] = {}
-    for role, group in plan.phases.items():
-        for stack in group:
-            if stack.key == plan.measured[role].key:
-                out[stack.key] = by_role[role]
-                continue
-            image = phase_images.get(stack.key)
-            alignment = aligned.phase_alignments.get(stack.key)
-            if image is None or alignment is None:
-                continue
-            transform = alignment.transform
-            sample = sample_region(
-                region,
-                image,
-                to_region_space=transform.GetInverse() if transform is not None else None,
-            )
-            out[stack.key] = measure_roi(
-                sitk.GetArrayViewFromImage(image)[sample.box],
-                sample.box_mask,
-                sample.box_weights,
-                image.GetSpacing(),
-                lesion=spec.kind is RoiKind.LESION,
-                min_voxels=min_voxels,
-                rules=plan.lexicon.rules,
-                roi_id=spec.id,
-                role=role,
-            )
-    return out
+    phase_images = phase_images or {}
+    jobs = [SeriesJob(role, plan.measured[role], role, role.value) for role in images]
+    jobs += [
+        job
+        for job in series_jobs(plan, phase_keys=phase_images.keys())
+        if not isinstance(job.key, Role) and job.key in aligned.phase_alignments
+    ]
+    parts: dict[Role | str, MeasuredSeries] = {}
+    for done, job in enumerate(jobs):
+        say(progress, f"measuring {job.name}", done, len(jobs))
+        if isinstance(job.key, Role):
+            image, alignment = images[job.key], aligned.alignments[job.key]
+        else:
+            image, alignment = phase_images[job.key], aligned.phase_alignments[job.key]
+        parts[job.key] = measure_series(plan, job, image, alignment)
+    return _study_measurement(plan, parts, list(images))
 
 
 def characterize_study(
@@ -905,11 +1099,50 @@ def analyze_case(
         study_index=study_index,
         use_cache=use_cache,
     )
-    images = load_series(plan, progress=progress)
-    phase_images = load_phases(plan, progress=progress)
-    aligned = align_series(plan, images, progress=progress, phase_images=phase_images)
-    plan, placed = place_rois(plan, images, aligned, progress=progress)
-    measurement = measure_study(plan, images, aligned, progress=progress, phase_images=phase_images)
+    # The series stream through one at a time (stream_series): the anchor stays loaded, each
+    # other series is loaded, aligned, measured, its key slices cut, and released.
+    jobs = series_jobs(plan)
+    by_key = {job.key: job for job in jobs}
+    say(progress, _loading_message(by_key[plan.anchor_role]), 0, len(jobs))
+    anchor_image = load_stack(plan.anchor, study_dir=plan.index.study_dir)
+    # Registration works in the ROIs' box before placement, as align_series does.
+    box = union_bounds(plan.regions)
+    # The anchor first, then reading order: the order a reference's key slice is looked for.
+    ordered = [by_key[role] for role in display_order(plan.measured, plan.anchor_role)]
+    ordered += [job for job in jobs if job not in ordered]
+    # Series named by an `at` are aligned before the ROIs are placed (docs/rois.md), then
+    # streamed again for measurement with the alignment found.
+    named = set(plan.viewer_keys.values())
+    early = stream_series(
+        plan,
+        anchor_image,
+        [j for j in ordered if j.stack.key in named and j.key is not plan.anchor_role],
+        box_mm=box,
+        progress=progress,
+    )
+    early[plan.anchor_role] = identity_alignment("identity")
+    plan, placed = place_rois(
+        plan, {plan.anchor_role: anchor_image}, _split_alignments(early), progress=progress
+    )
+    parts: dict[Role | str, MeasuredSeries] = {}
+    shown: set[str] = set()  # reference and control ROIs that have their key slice
+
+    def measure(job: SeriesJob, image: sitk.Image, alignment: Alignment) -> None:
+        say(progress, f"measuring {job.name}", len(parts), len(ordered))
+        part = measure_series(plan, job, image, alignment, key_slices=True, skip=shown)
+        shown.update(k for k, v in part.key_slices.items() if v.kind != RoiKind.LESION.value)
+        parts[job.key] = part
+
+    found = stream_series(
+        plan, anchor_image, ordered, measure, box_mm=box, known=early, progress=progress
+    )
+    del anchor_image
+    # The anchor's pyramids kept between register_series calls are not needed to write the
+    # report (docs/performance.md, Memory).
+    clear_anchor_cache()
+    release_free_memory()
+    aligned = _aligned_study(plan, jobs, found, box)
+    measurement = _study_measurement(plan, parts, list(plan.measured))
     result = characterize_study(plan, measurement, progress=progress)
     qc = [*plan.qc, *aligned.qc, *placed.qc, *measurement.qc, *result.qc]
     if plan.anchor_note is not None:
@@ -924,19 +1157,25 @@ def analyze_case(
         cautions=lexicon.cautions,
         phase_alignments=aligned.phase_alignments,
     )
-    key_slices = build_key_slices(
-        plan.case, images, measurement.samples, plan.measured, anchor=plan.anchor_role
+    key_slices = arrange_key_slices(
+        plan.case, {role: parts[role].key_slices for role in plan.measured}, anchor=plan.anchor_role
     )
     return Analysis(
         findings=findings,
         key_slices=tuple(key_slices),
         phrases=lesion_phrases(result),
         plan=plan,
-        images=dict(images),
         aligned=aligned,
         measurement=measurement,
         files=dict(placed.files),
-        phase_images=phase_images,
+    )
+
+
+def _split_alignments(found: Mapping[Role | str, Alignment]) -> AlignedStudy:
+    """Alignments by job key as an :class:`AlignedStudy` (no displacement, no notes)."""
+    return AlignedStudy(
+        alignments={k: a for k, a in found.items() if isinstance(k, Role)},
+        phase_alignments={k: a for k, a in found.items() if not isinstance(k, Role)},
     )
 
 
@@ -1073,9 +1312,15 @@ def _outlined(case: Case) -> set[str]:
 def _alignments_by_key(
     plan: ReportPlan, aligned: AlignedStudy, anchor_image: sitk.Image
 ) -> dict[str, Alignment]:
-    """Each stack's alignment to the anchor by stack key; a series named by an ``at`` that is
-    not measured is aligned here like the measured ones."""
-    by_key = {stack.key: aligned.alignments[role] for role, stack in plan.measured.items()}
+    """Each stack's alignment to the anchor by stack key: those ``aligned`` holds, and each
+    stack named by an ``at`` that it lacks (a series not measured, or not aligned yet),
+    registered here like the measured ones."""
+    by_key = {
+        stack.key: aligned.alignments[role]
+        for role, stack in plan.measured.items()
+        if role in aligned.alignments
+    }
+    by_key.update(aligned.phase_alignments)
     for key in sorted(set(plan.viewer_keys.values()) - set(by_key)):
         stack = next(s for s in plan.index.stacks if s.key == key)
         other_frame = stack.frame_of_reference_uid != plan.anchor.frame_of_reference_uid

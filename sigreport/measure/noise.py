@@ -46,6 +46,57 @@ def _truncated_rayleigh_moments(a: float) -> tuple[float, float]:
     return m1, m2
 
 
+def median_in_place(values: np.ndarray) -> float:
+    """The median of a 1D array, as ``numpy.median`` gives it for the array in float64 (the
+    middle value, or the float64 mean of the middle two), without a float64 copy: ``values``
+    is partitioned in place (its order is lost)."""
+    n = values.size
+    if n == 0:
+        raise ValueError('Argument "values" must not be empty.')
+    half = n // 2
+    if n % 2:
+        values.partition(half)
+        return float(values[half])
+    values.partition((half - 1, half))
+    return float(np.mean(values[half - 1 : half + 1].astype(np.float64)))
+
+
+def _below(values: np.ndarray, limit: float, *, inclusive: bool = False) -> np.ndarray:
+    """``values < limit`` (``<=`` when ``inclusive``) compared in float64 whatever the type of
+    ``values``: a float32 comparison would round ``limit`` to float32 first."""
+    compare = np.less_equal if inclusive else np.less
+    return compare(values, limit, signature="dd->?")
+
+
+# Voxels gathered per block (bounds the image-type copy of a block to 16 MiB of float32).
+_BLOCK = 1 << 22
+
+
+def _gather(
+    flat: np.ndarray, keep: np.ndarray, limit: float, *, inclusive: bool = False
+) -> np.ndarray:
+    """The kept voxels below ``limit`` (:func:`_below`), as float64 in the image's order,
+    gathered a block at a time: no copy of the whole image in its type besides the result."""
+    mask = _below(flat, limit, inclusive=inclusive)
+    mask &= keep
+    out = np.empty(int(np.count_nonzero(mask)), dtype=np.float64)
+    filled = 0
+    for start in range(0, flat.size, _BLOCK):
+        part = flat[start : start + _BLOCK][mask[start : start + _BLOCK]]
+        out[filled : filled + part.size] = part
+        filled += part.size
+    return out
+
+
+def _std_in_place(values: np.ndarray, mean: float) -> float:
+    """``numpy.std(values)`` (population) given ``numpy.mean(values)``, the deviations squared
+    in ``values`` itself as numpy squares them in a copy: the same double, without the copy
+    (``values`` is overwritten)."""
+    np.subtract(values, mean, out=values)
+    np.square(values, out=values)
+    return math.sqrt(float(np.sum(values)) / values.size)
+
+
 def noise_sigma(
     values: np.ndarray,
     *,
@@ -74,35 +125,46 @@ def noise_sigma(
     float or None
         Sigma in the image's units; None when no Rayleigh background can be found.
     """
-    v = np.asarray(values, dtype=np.float64).ravel()
-    v = v[np.isfinite(v) & (v > 0)]
-    if v.size < min_background_voxels:
+    # The image is read in its own type (float32 for a loaded series) and never copied whole:
+    # each step gathers the voxels it reads as float64 (an exact conversion), in the image's
+    # order, and compares in float64 (_below), so every value is the one a float64 copy of the
+    # whole image would give.
+    flat = np.asarray(values).ravel()
+    keep = np.isfinite(flat)
+    keep &= flat > 0
+    n = int(np.count_nonzero(keep))
+    if n < min_background_voxels:
         return None
+    median = median_in_place(flat[keep])
     m1, m2 = _truncated_rayleigh_moments(_A)
     expected_cv = math.sqrt(m2 - m1 * m1) / m1
 
-    dark = v[v <= np.median(v)]
+    dark = _gather(flat, keep, median, inclusive=True)
     top = float(dark.max())
     if top <= 0:
         return None
     counts, edges = np.histogram(dark, bins=128, range=(0.0, top))
+    del dark
     peak = int(np.argmax(counts))
     sigma = max(0.5 * (edges[peak] + edges[peak + 1]), edges[1] - edges[0])
 
     for _ in range(max_iterations):
-        selected = v[v < _A * sigma]
+        selected = _gather(flat, keep, _A * sigma)
         if selected.size == 0:
             return None
-        new = math.sqrt(float(np.mean(selected * selected)) / m2)
+        np.multiply(selected, selected, out=selected)
+        new = math.sqrt(float(np.mean(selected)) / m2)
+        del selected
         converged = abs(new - sigma) <= 1e-6 * sigma
         sigma = new
         if converged:
             break
 
-    selected = v[v < _A * sigma]
-    if selected.size < max(min_background_voxels, min_background_fraction * v.size):
+    selected = _gather(flat, keep, _A * sigma)
+    if selected.size < max(min_background_voxels, min_background_fraction * n):
         return None
-    cv = float(selected.std() / selected.mean())
+    mean = float(np.mean(selected))
+    cv = _std_in_place(selected, mean) / mean
     if abs(cv - expected_cv) > cv_tolerance * expected_cv:
         return None
     return float(sigma)

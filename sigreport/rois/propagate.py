@@ -376,7 +376,8 @@ def axial_diameters_mm(sample: RoiSample, image: sitk.Image) -> tuple[float, flo
     _, spacing, direction, _ = _geometry(image)
     if sample.n_voxels == 0:
         return 0.0, 0.0, 0.0
-    zyx = np.argwhere(sample.mask)
+    # The box's voxels, in the grid's index order (as over the whole grid, without its mask).
+    zyx = np.argwhere(sample.box_mask) + np.asarray(sample.offset)
     points = voxel_centres_mm(image, zyx[:, ::-1].astype(np.float64))
     # A voxel's footprint along each patient axis (the box of its three edge vectors).
     footprint = np.abs(direction) @ spacing

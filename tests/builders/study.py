@@ -12,6 +12,7 @@ every median and ratio is known exactly.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -63,13 +64,18 @@ class WrittenStudy:
     case_path: Path
 
 
-def _volume(role: str) -> np.ndarray:
+def _volume(
+    role: str,
+    size: tuple[int, int, int] = SIZE,
+    spacing: tuple[float, float, float] = SPACING,
+    origin: tuple[float, float, float] = ORIGIN,
+) -> np.ndarray:
     background, lesion, reference = VALUES[role]
-    nx, ny, nz = SIZE
+    nx, ny, nz = size
     k, j, i = np.meshgrid(np.arange(nz), np.arange(ny), np.arange(nx), indexing="ij")
     # Axial slices, identity direction: patient point = origin + index * spacing (PS3.3
     # C.7.6.2.1.1).
-    points = np.stack([i, j, k], axis=-1) * np.asarray(SPACING) + np.asarray(ORIGIN)
+    points = np.stack([i, j, k], axis=-1) * np.asarray(spacing) + np.asarray(origin)
     out = np.full((nz, ny, nx), background, dtype=np.int16)
     for centre, radius, value in (
         (LESION_CENTRE, LESION_BALL_MM, lesion),
@@ -81,17 +87,31 @@ def _volume(role: str) -> np.ndarray:
 
 
 def write_study(
-    root: Path, *, roles: tuple[str, ...] = ("T1", "T2", "FLAIR"), register: bool = False
+    root: Path,
+    *,
+    roles: tuple[str, ...] = ("T1", "T2", "FLAIR"),
+    register: bool = False,
+    slices: Mapping[str, tuple[int, float]] | None = None,
 ) -> WrittenStudy:
-    """Write the study under ``root / "study"`` and its case file ``root / "case.toml"``."""
+    """Write the study under ``root / "study"`` and its case file ``root / "case.toml"``.
+
+    ``slices`` gives a role another stack: (number of slices, slice spacing mm) instead of 16
+    of 3 mm, centred where the others are (e.g. a 1,000-slice series)."""
     study_dir = root / "study"
     study_uid, for_uid = generate_uid(), generate_uid()
     for role in roles:
+        size, spacing, origin = SIZE, SPACING, ORIGIN
+        if slices is not None and role in slices:
+            count, step = slices[role]
+            centre = ORIGIN[2] + (SIZE[2] - 1) * SPACING[2] / 2.0
+            size = (SIZE[0], SIZE[1], count)
+            spacing = (SPACING[0], SPACING[1], step)
+            origin = (ORIGIN[0], ORIGIN[1], centre - (count - 1) * step / 2.0)
         write_classic_series(
             study_dir / role,
-            _volume(role),
-            origin=ORIGIN,
-            spacing=SPACING,
+            _volume(role, size, spacing, origin),
+            origin=origin,
+            spacing=spacing,
             study_uid=study_uid,
             for_uid=for_uid,
             series_number=SERIES_NUMBERS[role],

@@ -6,10 +6,13 @@ Magnitude of complex Gaussian noise: |S + n_re + i n_im| with n ~ N(0, sigma^2) 
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pytest
 
 from sigreport.measure import noise_sigma
+from sigreport.measure.noise import median_in_place
 
 
 def _phantom(sigma: float, background_fraction: float, signal: float, seed: int = 0) -> np.ndarray:
@@ -70,3 +73,72 @@ def test_dark_tissue_next_to_the_background_does_not_inflate_sigma():
     clean[:, :, 40:] = 600.0
     image = np.abs(clean + rng.normal(0, sigma, shape) + 1j * rng.normal(0, sigma, shape))
     assert noise_sigma(image) == pytest.approx(sigma, rel=0.05)
+
+
+@pytest.mark.parametrize("n", [1, 2, 7, 8, 1001, 1000])
+@pytest.mark.parametrize("dtype", [np.float32, np.float64, np.int16])
+def test_median_in_place_is_numpys_median_in_float64(n, dtype):
+    # numpy.median of the float64 values is the oracle, to the last bit; duplicates included.
+    rng = np.random.default_rng(n)
+    values = (rng.normal(100.0, 30.0, n) * 7.3).astype(dtype)
+    values[: n // 3] = values[-1]
+    want = np.median(values.astype(np.float64))
+    assert median_in_place(values.copy()) == want
+    with pytest.raises(ValueError, match='"values" must not be empty'):
+        median_in_place(np.zeros(0, dtype=dtype))
+
+
+def _sigma_in_float64(values: np.ndarray) -> float | None:
+    """The estimate computed the plain way, on a float64 copy of the whole image: the oracle
+    the memory-sparing noise_sigma must equal to the last bit (same defaults)."""
+    from sigreport.measure.noise import _A, _truncated_rayleigh_moments
+
+    v = np.asarray(values, dtype=np.float64).ravel()
+    v = v[np.isfinite(v) & (v > 0)]
+    if v.size < 200:
+        return None
+    m1, m2 = _truncated_rayleigh_moments(_A)
+    expected_cv = math.sqrt(m2 - m1 * m1) / m1
+    dark = v[v <= np.median(v)]
+    top = float(dark.max())
+    if top <= 0:
+        return None
+    counts, edges = np.histogram(dark, bins=128, range=(0.0, top))
+    peak = int(np.argmax(counts))
+    sigma = max(0.5 * (edges[peak] + edges[peak + 1]), edges[1] - edges[0])
+    for _ in range(100):
+        selected = v[v < _A * sigma]
+        if selected.size == 0:
+            return None
+        new = math.sqrt(float(np.mean(selected * selected)) / m2)
+        converged = abs(new - sigma) <= 1e-6 * sigma
+        sigma = new
+        if converged:
+            break
+    selected = v[v < _A * sigma]
+    if selected.size < max(200, 0.02 * v.size):
+        return None
+    cv = float(selected.std() / selected.mean())
+    if abs(cv - expected_cv) > 0.25 * expected_cv:
+        return None
+    return float(sigma)
+
+
+@pytest.mark.parametrize("seed", range(4))
+@pytest.mark.parametrize("dtype", [np.float32, np.float64, np.uint16])
+def test_the_estimate_equals_the_plain_float64_computation(seed, dtype):
+    # The series is read in its own type, never copied whole to float64: the same double as
+    # the plain computation, for float32 series (as loaded), float64 and stored integers.
+    image = _phantom(4.0 + 3.0 * seed, 0.3 + 0.1 * seed, 500.0, seed=seed)
+    image = np.round(image).astype(dtype) if dtype is np.uint16 else image.astype(dtype)
+    if dtype is not np.uint16:
+        image[0, 0, :5] = np.nan
+        image[1, 0, :5] = 0.0
+    want = _sigma_in_float64(image)
+    assert want is not None
+    assert noise_sigma(image) == want
+
+
+def test_no_background_gives_none_as_the_plain_computation():
+    tissue = np.random.default_rng(3).normal(800.0, 10.0, (8, 32, 32)).astype(np.float32)
+    assert _sigma_in_float64(tissue) is None and noise_sigma(tissue) is None

@@ -200,7 +200,7 @@ def test_report_progress_names_each_stage(tmp_path: Path):
     for step in (
         "indexing",
         "loading T2: series 3 (t2 [test] <b>)",
-        "measuring L1",
+        "measuring T2",
         "characterizing",
         "writing findings.json",
         "writing sr.dcm",

@@ -22,7 +22,13 @@ import pytest
 import SimpleITK as sitk
 from pydicom import dcmread
 
-from sigreport.pipeline import analyze_case, characterize_study, measure_study
+from sigreport.pipeline import (
+    analyze_case,
+    characterize_study,
+    load_phases,
+    load_series,
+    measure_study,
+)
 from sigreport.report import build_findings, write_report
 from sigreport.synth import generate_study
 
@@ -107,10 +113,11 @@ def test_an_adc_map_stored_without_its_vendor_scaling_is_caught(diffusion):
     # the same study with the ADC map's values divided by 1000, measured again.
     analysis, _, _ = diffusion
     plan = analysis.plan
-    images = dict(analysis.images)
+    # The analysis keeps no pixels (the series streamed through): the stages load them again.
+    images = load_series(plan)
     adc_role = next(r for r in images if r.value == "ADC")
     images[adc_role] = sitk.ShiftScale(images[adc_role], 0.0, 1e-3)
-    measurement = measure_study(plan, images, analysis.aligned, phase_images=analysis.phase_images)
+    measurement = measure_study(plan, images, analysis.aligned, phase_images=load_phases(plan))
     result = characterize_study(plan, measurement)
     findings = build_findings(
         plan.index,
