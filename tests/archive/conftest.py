@@ -49,6 +49,18 @@ class OrthancServer:
                     lines.append(tail)
         return lines
 
+    def retrieved_series(self, study_uid: str, since: int = 0) -> list[str]:
+        """Series UIDs of ``study_uid`` whose instances were retrieved (WADO-RS
+        ``GET .../series/{uid}``, not its ``/metadata``) since log line ``since``."""
+        prefix = f"GET /dicom-web/studies/{study_uid}/series/"
+        out = []
+        for line in self.log_requests()[since:]:
+            if line.startswith(prefix):
+                rest = line[len(prefix) :].strip()
+                if "/" not in rest:
+                    out.append(rest)
+        return out
+
     def rest_get(self, path: str) -> requests.Response:
         response = requests.get(f"{self.rest}{path}", auth=(self.user, self.password), timeout=30)
         response.raise_for_status()

@@ -56,19 +56,6 @@ def studies(orthanc, tmp_path_factory):
     return root, made, uids
 
 
-def _retrieved(orthanc, study_uid: str, since: int) -> list[str]:
-    """Series of ``study_uid`` whose instances were retrieved (WADO-RS .../series/{uid}, not
-    its metadata) in Orthanc's log since line ``since``."""
-    prefix = f"GET /dicom-web/studies/{study_uid}/series/"
-    out = []
-    for line in orthanc.log_requests()[since:]:
-        if line.startswith(prefix):
-            rest = line[len(prefix) :].strip()
-            if "/" not in rest:
-                out.append(rest)
-    return out
-
-
 def _rows(out: Path) -> dict[str, dict[str, str]]:
     with (out / "summary.csv").open(newline="", encoding="utf-8") as handle:
         return {row["id"]: row for row in csv.DictReader(handle)}
@@ -161,9 +148,9 @@ def test_a_mixed_worklist_runs_folder_and_archive_cases_and_a_wrong_uid_fails_al
     # nothing for the wrong UID.
     measured = _measured(_findings(out, "web-b"))
     assert len(measured) == 3  # T1, T1FS, T2: not the localizer
-    assert sorted(_retrieved(orthanc, uids["b"], mark)) == sorted(measured)
-    assert _retrieved(orthanc, uids["a"], mark) == []
-    assert _retrieved(orthanc, WRONG_UID, mark) == []
+    assert sorted(orthanc.retrieved_series(uids["b"], mark)) == sorted(measured)
+    assert orthanc.retrieved_series(uids["a"], mark) == []
+    assert orthanc.retrieved_series(WRONG_UID, mark) == []
     # No case's private folder is left, nor the batch's.
     assert not [p for p in temp_root.rglob("sigreport-*")]
     assert rows["web-b"]["pushed"] == ""  # no --push
@@ -185,7 +172,7 @@ def test_archive_cases_with_push_equal_folder_runs_fetch_only_needed_series_and_
         assert findings["lesions"]
         measured = _measured(findings)
         assert len(measured) == 3
-        assert sorted(_retrieved(orthanc, uids[name], mark)) == sorted(measured), case_id
+        assert sorted(orthanc.retrieved_series(uids[name], mark)) == sorted(measured), case_id
 
         # The SR is in the archive, byte for byte, and its answer is on the sheet.
         sr_bytes = (out / case_id / "sr.dcm").read_bytes()

@@ -76,19 +76,6 @@ def uploaded(orthanc, tmp_path_factory):
     }
 
 
-def _retrieves(orthanc, study_uid: str, since: int) -> list[str]:
-    """Series UIDs whose instances were retrieved (WADO-RS GET .../series/{uid}, not /metadata)
-    in Orthanc's log since line ``since``."""
-    prefix = f"GET /dicom-web/studies/{study_uid}/series/"
-    out = []
-    for line in orthanc.log_requests()[since:]:
-        if line.startswith(prefix):
-            rest = line[len(prefix) :].strip()
-            if "/" not in rest:
-                out.append(rest)
-    return out
-
-
 def test_scan_from_the_archive_lists_what_a_folder_scan_lists_without_fetching_pixels(
     archive_env, uploaded
 ):
@@ -107,7 +94,7 @@ def test_scan_from_the_archive_lists_what_a_folder_scan_lists_without_fetching_p
     assert remote["series"] == local["series"]
     assert [s["role"] for s in remote["series"]] == ["T1", "T1FS", "T2", "UNKNOWN", "T2"]
     # Metadata only: QIDO-RS and WADO-RS metadata requests, no instance retrieved.
-    assert _retrieves(orthanc, uploaded["study_uid"], mark) == []
+    assert orthanc.retrieved_series(uploaded["study_uid"], mark) == []
     assert any(line.endswith("/metadata") for line in orthanc.log_requests()[mark:])
 
 
@@ -152,7 +139,7 @@ def test_report_from_the_archive_equals_a_folder_run_fetches_only_needed_series_
     # Only the measured series were retrieved: not the localizer, not the coarse T2.
     measured = {s["series_instance_uid"] for s in folder["series"] if s["measured"]}
     assert len(measured) == 3
-    fetched = _retrieves(orthanc, uploaded["study_uid"], mark)
+    fetched = orthanc.retrieved_series(uploaded["study_uid"], mark)
     assert sorted(fetched) == sorted(measured)
     assert uploaded["coarse_uid"] not in fetched
 
