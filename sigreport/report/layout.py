@@ -109,7 +109,10 @@ def _graded(stats: Mapping[str, Any] | None, role: str, phrases: LesionPhrases) 
     """(words, grade class) of one lesion on one role."""
     if stats is None or stats.get("ratio") is None:
         return NOT_ASSESSED, "unmeasured"
-    words = str(phrases.grades.get(role) or stats.get("grade") or "")
+    phrase = phrases.grades.get(role)
+    if phrase:  # characterization's wording already says "borderline" where it applies
+        return str(phrase), str(stats.get("grade") or "")
+    words = str(stats.get("grade") or "")
     if stats.get("borderline"):
         words += " (borderline)"
     return words, str(stats.get("grade") or "")

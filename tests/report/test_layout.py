@@ -212,3 +212,19 @@ def test_summary_says_not_assessed_for_a_flow_void(findings):
         plain["enhancement"]["value"] != ""
         or findings["lesions"][0]["enhancement"]["percent"] is None
     )
+
+
+def test_a_borderline_cell_says_borderline_once(findings):
+    # Characterization's wording already says "borderline hypointense"; the bare grade (no
+    # phrase for that role) gets the word added once.
+    t2 = findings["lesions"][0]["signal"]["T2"]
+    t2["borderline"] = True
+    t1 = findings["lesions"][0]["signal"]["T1"]
+    t1["borderline"] = True
+    phrases = {"L1": LesionPhrases(grades={"T2": "borderline hyperintense"})}
+    table = summary_table(findings, phrases)
+    l1 = dict(zip(table["roles"], table["rows"][0]["cells"], strict=True))
+    assert l1["T2"]["words"] == "borderline hyperintense"
+    assert l1["T1"]["words"] == f"{t1['grade']} (borderline)"
+    for cell in l1.values():
+        assert cell["words"].count("borderline") <= 1
