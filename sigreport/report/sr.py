@@ -417,6 +417,12 @@ def _image(ref: InstanceRef, relationship: str = sr_content.INFERRED_FROM) -> Da
     )
 
 
+def _key_slice(ref: InstanceRef | None) -> list[Dataset]:
+    """A per-series value's image reference: its key slice, or none (a new item each call, as
+    each measurement owns its content items)."""
+    return [] if ref is None else [_image(ref)]
+
+
 def _tracking(label: str) -> list[Dataset]:
     return sr_content.tracking_identifier(hd.UID(), label)
 
@@ -463,7 +469,7 @@ def _lesion_group(
                     UNIT_NONE,
                     derivation=derivation,
                     method=method,
-                    images=[_image(ref)] if ref is not None else (),
+                    images=_key_slice(ref),
                 )
             )
         if stats.get("ratio") is not None:
@@ -474,7 +480,7 @@ def _lesion_group(
                     UNIT_RATIO,
                     derivation=MEDIAN,  # ratio of the medians (docs/usage.md)
                     method=method,
-                    images=[_image(ref)] if ref is not None else (),
+                    images=_key_slice(ref),
                 )
             )
         grade = GRADE_CODES.get(str(stats.get("grade")))
@@ -636,7 +642,7 @@ def _roi_group(
                     UNIT_NONE,
                     derivation=MEDIAN,
                     method=method,
-                    images=[_image(ref)] if ref is not None else (),
+                    images=_key_slice(ref),
                 )
             )
         if snr.get(role) is not None:
@@ -646,7 +652,7 @@ def _roi_group(
                     float(snr[role]),
                     UNIT_NONE,
                     method=method,
-                    images=[_image(ref)] if ref is not None else (),
+                    images=_key_slice(ref),
                 )
             )
     check = roi.get("check")
