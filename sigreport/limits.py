@@ -33,8 +33,9 @@ MAX_DEFLATED_BYTES = 256 * 1024**2
 MAX_ROIS = 200
 MAX_ROI_EXTENT_MM = 500.0
 # Series a report holds loaded besides the anchor while it streams the study through
-# (sigreport.pipeline.stream_series): two register in parallel (one per core) when their float32
-# pixels together fit SERIES_WINDOW_BYTES; a larger series is loaded, registered and measured
-# alone, so a long series costs its own size and no more.
+# (sigreport.pipeline.stream_series): up to this many (one per core) while they register in
+# worker threads, when their float32 pixels together fit SERIES_WINDOW_BYTES; a larger series,
+# or one that is not registered, is loaded, registered and measured alone, so a long series
+# costs its own size and no more.
 SERIES_IN_FLIGHT = 2
 SERIES_WINDOW_BYTES = 64 * 1024**2

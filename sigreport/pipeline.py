@@ -25,7 +25,9 @@ a large registration, a missing series each leave a note. The contract is docs/u
 from __future__ import annotations
 
 import os
+from collections import deque
 from collections.abc import Callable, Container, Mapping, Sequence
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
@@ -750,29 +752,32 @@ def _series_bytes(stack: Stack) -> int:
     return 4 * int(columns) * int(rows) * int(slices)
 
 
-def _windows(
-    plan: ReportPlan, jobs: Sequence[SeriesJob], known: Container[Role | str]
-) -> list[list[SeriesJob]]:
-    """``jobs`` in order, cut into the groups :func:`stream_series` holds at once: two
-    consecutive series that are both to be registered share a group (they register in
-    parallel) when the machine has two cores and their pixels together fit
-    ``limits.SERIES_WINDOW_BYTES``; every other series is alone."""
-    size = max(1, min(limits.SERIES_IN_FLIGHT, os.cpu_count() or 1))
-    windows: list[list[SeriesJob]] = []
-    for job in jobs:
-        registers = job.key not in known and _scanner_alignment(plan, job)[0] is None
-        last = windows[-1] if windows else None
-        if (
-            registers
-            and last is not None
-            and len(last) < size
-            and all(j.key not in known and _scanner_alignment(plan, j)[0] is None for j in last)
-            and sum(_series_bytes(j.stack) for j in (*last, job)) <= limits.SERIES_WINDOW_BYTES
-        ):
-            last.append(job)
-        else:
-            windows.append([job])
-    return windows
+@dataclass
+class _InFlight:
+    """A series :func:`stream_series` holds: loaded, and registering or already aligned."""
+
+    job: SeriesJob
+    image: sitk.Image
+    size: int  # its pixels' bytes (0 for the anchor, which is held anyway)
+    alignment: Alignment | None  # known without registration
+    registering: Future[dict[Role | str, Alignment]] | None
+
+
+def _joins(in_flight: Sequence[_InFlight], job: SeriesJob, registers: bool, slots: int) -> bool:
+    """May ``job`` be loaded beside the series already held? Alone, always; else only when it
+    is to be registered, every series held is registering (or registered and waiting for its
+    turn to be measured), fewer than ``slots`` are held and their pixels together fit
+    ``limits.SERIES_WINDOW_BYTES``. So a series that needs no registration, or a large one, is
+    held alone beside the anchor."""
+    if not in_flight:
+        return True
+    return (
+        registers
+        and len(in_flight) < slots
+        and all(held.registering is not None for held in in_flight)
+        and sum(held.size for held in in_flight) + _series_bytes(job.stack)
+        <= limits.SERIES_WINDOW_BYTES
+    )
 
 
 def stream_series(
@@ -785,10 +790,18 @@ def stream_series(
     known: Mapping[Role | str, Alignment] | None = None,
     progress: Progress | None = None,
 ) -> dict[Role | str, Alignment]:
-    """Load, align and visit the series of ``jobs`` a few at a time, releasing each before the
-    next are loaded: memory holds the anchor and at most one window of series
-    (``limits.SERIES_IN_FLIGHT`` series whose pixels together fit
-    ``limits.SERIES_WINDOW_BYTES``, else one), whatever the number of series or slices.
+    """Load, align and visit the series of ``jobs`` in order, releasing each before the next
+    are loaded: memory holds the anchor and at most ``limits.SERIES_IN_FLIGHT`` series (one
+    per core) whose pixels together fit ``limits.SERIES_WINDOW_BYTES``, else one, whatever
+    the number of series or slices.
+
+    The series held at once are registered in worker threads (one per core; each registration
+    on one ITK thread, :func:`sigreport.align.register_series`) while this thread visits the
+    first of them as soon as its registration is done, then releases it and loads the next:
+    the cores do not wait for the slowest series of a group, and measuring one series overlaps
+    registering the next. Series are visited in the order of ``jobs`` whatever order their
+    registrations end in, and every registration's answer does not depend on the scheduling,
+    so the result is the same as one series at a time.
 
     Parameters
     ----------
@@ -799,8 +812,9 @@ def stream_series(
     jobs
         The series to visit, in order (:func:`series_jobs`).
     visit
-        Called once per series, while it is loaded, with its alignment to the anchor (without
-        its ``displacement_mm``); it must keep no reference to the image. None: align only.
+        Called once per series, in order, on this thread, while the series is loaded, with
+        its alignment to the anchor (without its ``displacement_mm``); it must keep no
+        reference to the image. None: align only.
     box_mm
         The ROIs' box registration works in (:func:`sigreport.align.register_series`): that
         of the plan before the ROIs are placed, as :func:`align_series` takes it.
@@ -817,43 +831,62 @@ def stream_series(
     """
     known = dict(known or {})
     found: dict[Role | str, Alignment] = {}
-    total = len(jobs)
-    done = 0
-    for window in _windows(plan, jobs, known):
-        loaded: dict[Role | str, sitk.Image] = {}
-        for job in window:
-            if job.key is plan.anchor_role:
-                loaded[job.key] = anchor_image
-            else:
-                say(progress, _loading_message(job), done, total)
-                loaded[job.key] = load_stack(job.stack, study_dir=plan.index.study_dir)
-            done += 1
-        to_register: dict[Role | str, sitk.Image] = {}
-        for job in window:
-            alignment = known.get(job.key)
-            if alignment is None:
-                alignment = _scanner_alignment(plan, job)[0]
-            if alignment is None:
-                to_register[job.key] = loaded[job.key]
-            else:
-                found[job.key] = alignment
-        if to_register:
-            names = ", ".join(j.name for j in window if j.key in to_register)
-            say(progress, f"registering {names} to {plan.anchor_role.value}")
-            # Repeated calls share the anchor's prepared pyramid (sigreport.align).
-            found.update(
-                register_series(
-                    anchor_image, to_register, box_mm=box_mm, settings=plan.lexicon.alignment
-                )
-            )
-            to_register.clear()
-        if visit is not None:
-            for job in window:
-                visit(job, loaded[job.key], found[job.key])
-        loaded.clear()
-        # What the series and their registration freed goes back to the system before the
-        # next series is read (sigreport.memory).
-        release_free_memory()
+    slots = max(1, min(limits.SERIES_IN_FLIGHT, os.cpu_count() or 1))
+    waiting = deque(jobs)
+    in_flight: deque[_InFlight] = deque()
+    total, done = len(jobs), 0
+    with ThreadPoolExecutor(max_workers=slots, thread_name_prefix="sigreport-align") as pool:
+        try:
+            while waiting or in_flight:
+                while waiting:
+                    job = waiting[0]
+                    alignment = known.get(job.key)
+                    if alignment is None:
+                        alignment = _scanner_alignment(plan, job)[0]
+                    if not _joins(in_flight, job, alignment is None, slots):
+                        break
+                    waiting.popleft()
+                    if job.key is plan.anchor_role:
+                        image, size = anchor_image, 0
+                    else:
+                        say(progress, _loading_message(job), done, total)
+                        image = load_stack(job.stack, study_dir=plan.index.study_dir)
+                        size = _series_bytes(job.stack)
+                    done += 1
+                    registering = None
+                    if alignment is None:
+                        say(progress, f"registering {job.name} to {plan.anchor_role.value}")
+                        # Calls share the anchor's prepared pyramid (sigreport.align).
+                        registering = pool.submit(
+                            register_series,
+                            anchor_image,
+                            {job.key: image},
+                            box_mm=box_mm,
+                            settings=plan.lexicon.alignment,
+                            max_workers=1,
+                        )
+                    in_flight.append(_InFlight(job, image, size, alignment, registering))
+                    del image
+                first = in_flight.popleft()
+                key = first.job.key
+                if first.registering is not None:
+                    found[key] = first.registering.result()[key]
+                else:
+                    assert first.alignment is not None
+                    found[key] = first.alignment
+                if visit is not None:
+                    visit(first.job, first.image, found[key])
+                del first
+                # What the series and its registration freed goes back to the system before
+                # the next series is read (sigreport.memory).
+                release_free_memory()
+        finally:
+            # On an error, registrations not yet started are dropped; running ones end
+            # before the pool is closed.
+            for held in in_flight:
+                if held.registering is not None:
+                    held.registering.cancel()
+            in_flight.clear()
     return found
 
 
