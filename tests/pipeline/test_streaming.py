@@ -190,3 +190,66 @@ def test_every_dynamic_phase_streams_through_once(tmp_path, monkeypatch):
     assert live.most == 2 and live.alive == 0
     curve = analysis.measurement.study.rois[0].by_phase
     assert set(curve) == set(phases)
+
+
+def test_series_are_measured_in_order_while_the_next_ones_register(tmp_path, monkeypatch):
+    # A registration that ends early waits for its turn to be measured; measuring a series
+    # overlaps registering the ones after it (stream_series). The fake registration keeps the
+    # scanner's alignment; the first series to register ends after the second.
+    import threading
+
+    from sigreport.align import identity_alignment
+    from sigreport.synth import generate_study
+
+    study = generate_study("neuro", tmp_path / "case", motion=False)
+    events: list[tuple[str, str]] = []
+    lock = threading.Lock()
+    first: list[str] = []
+
+    def note(kind: str, key) -> None:
+        with lock:
+            events.append((kind, getattr(key, "value", str(key))))
+
+    second_ended = threading.Event()
+
+    def register(anchor, movings, **kwargs):
+        (key,) = movings
+        note("register", key)
+        with lock:
+            first.append(key)
+            rank = len(first)
+        if rank == 1:
+            # Ends only after the second has (or after 30 s, if the two never run together,
+            # which the assertions below then catch).
+            second_ended.wait(timeout=30.0)
+        note("registered", key)
+        if rank == 2:
+            second_ended.set()
+        return {key: identity_alignment("rigid")}
+
+    def loaded(stack, **kwargs):
+        note("load", stack.role)
+        return load_stack(stack, **kwargs)
+
+    measure = pipeline.measure_series
+
+    def measured(plan, job, *args, **kwargs):
+        note("measure", job.key)
+        return measure(plan, job, *args, **kwargs)
+
+    monkeypatch.setattr(pipeline, "register_series", register)
+    monkeypatch.setattr(pipeline, "measure_series", measured)
+    monkeypatch.setattr(pipeline, "load_stack", loaded)
+    monkeypatch.setattr(pipeline.os, "cpu_count", lambda: 2)
+    analysis = analyze_case(study.case_path, study_dir=study.study_dir, register=True)
+    order = [key for kind, key in events if kind == "register"]
+    assert len(order) >= 4
+    # Measured in the order they were loaded and registered, whatever order they ended in.
+    assert [key for kind, key in events if kind == "measure" and key in order] == order
+    ended = [key for kind, key in events if kind == "registered"]
+    assert ended[0] != order[0]  # the first one ended after the second...
+    assert events.index(("measure", order[0])) > events.index(("registered", order[1]))
+    # ...and the third series was loaded (and handed to a worker to register) before the
+    # second was measured.
+    assert events.index(("load", order[2])) < events.index(("measure", order[1]))
+    assert analysis.findings["series"]
