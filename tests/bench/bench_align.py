@@ -38,18 +38,7 @@ from sigreport.synth import generate_study
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from bench_report import _eight_series_scenario  # noqa: E402
 
-
-def _axis_angle(axis: Any, degrees: float) -> np.ndarray:
-    """Rodrigues' rotation formula (any linear-algebra textbook)."""
-    a = np.asarray(axis, float) / np.linalg.norm(axis)
-    k = np.array([[0, -a[2], a[1]], [a[2], 0, -a[0]], [-a[1], a[0], 0]])
-    theta = np.radians(degrees)
-    return np.eye(3) + np.sin(theta) * k + (1 - np.cos(theta)) * k @ k
-
-
-def _rigid(points: np.ndarray, matrix: Any, centre: Any, translation: Any) -> np.ndarray:
-    centre = np.asarray(centre, float)
-    return (points - centre) @ np.asarray(matrix).T + centre + np.asarray(translation, float)
+from builders.synthetic import motion_error  # noqa: E402
 
 
 def _captured(study: Any, out: Path) -> tuple[Any, dict[Any, Any], Any]:
@@ -106,19 +95,9 @@ def main() -> None:
                 if motion is None or found.matrix is None:
                     print(f"  {name:9} {role:10} {found.method:9} {spent:6.2f} s CPU (no truth)")
                     continue
-                want = _rigid(
-                    centres,
-                    _axis_angle(motion["axis"], motion["rotation_deg"]),
-                    motion["center_mm"],
-                    motion["translation_mm"],
+                error = motion_error(
+                    centres, motion, found.matrix, found.center_mm, found.translation_mm
                 )
-                got = _rigid(
-                    centres,
-                    np.reshape(found.matrix, (3, 3)),
-                    found.center_mm,
-                    found.translation_mm,
-                )
-                error = float(np.linalg.norm(got - want, axis=1).max())
                 angle = abs(float(found.rotation_deg) - float(motion["rotation_deg"]))
                 errors.append(error)
                 angles.append(angle)

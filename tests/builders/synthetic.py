@@ -107,3 +107,23 @@ def ratio(built: Built, role: str, roi_id: str, ref_id: str = "R1") -> float:
 
 def read_all(built: Built) -> list[pydicom.Dataset]:
     return [pydicom.dcmread(p) for p in sorted(built.study.study_dir.rglob("*.dcm"))]
+
+
+def motion_error(centres: np.ndarray, motion: dict, matrix, centre, translation) -> float:
+    """The largest distance (mm) at ``centres`` between a truth.json motion and a recovered
+    rigid transform ``p -> matrix (p - centre) + centre + translation`` (the convention of
+    ``Alignment.transform``; truth.json gives its motion as an axis, an angle, a centre and a
+    translation, mapping anchor anatomy to the series)."""
+    a = np.asarray(motion["axis"], float) / np.linalg.norm(motion["axis"])
+    k = np.array([[0, -a[2], a[1]], [a[2], 0, -a[0]], [-a[1], a[0], 0]])
+    theta = np.radians(motion["rotation_deg"])
+    # Rodrigues' rotation formula (any linear-algebra textbook).
+    rotation = np.eye(3) + np.sin(theta) * k + (1 - np.cos(theta)) * k @ k
+
+    def moved(points: np.ndarray, matrix, centre, translation) -> np.ndarray:
+        centre = np.asarray(centre, float)
+        return (points - centre) @ np.asarray(matrix).T + centre + np.asarray(translation, float)
+
+    want = moved(centres, rotation, motion["center_mm"], motion["translation_mm"])
+    got = moved(centres, np.reshape(matrix, (3, 3)), centre, translation)
+    return float(np.linalg.norm(got - want, axis=1).max())

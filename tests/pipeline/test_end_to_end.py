@@ -19,6 +19,8 @@ import pytest
 from sigreport.pipeline import run_report
 from sigreport.synth import generate_study
 
+from builders.synthetic import motion_error
+
 pytestmark = pytest.mark.slow
 
 # The issue's acceptance tolerance: every lesion's ratio within 10 % of truth.json.
@@ -142,34 +144,16 @@ def test_neuro_registration_recovers_the_simulated_motion(neuro):
             assert alignment["method"] == "identity"
             continue
         assert alignment["method"] == "rigid"
-        want = _rigid(
+        error = motion_error(
             centres,
-            _axis_angle(motion["axis"], motion["rotation_deg"]),
-            motion["center_mm"],
-            motion["translation_mm"],
-        )
-        got = _rigid(
-            centres,
-            np.reshape(alignment["matrix"], (3, 3)),
+            motion,
+            alignment["matrix"],
             alignment["center_mm"],
             alignment["translation_mm"],
         )
         # The issue's tolerance: within 0.5 mm and 0.5 degrees.
-        assert np.linalg.norm(got - want, axis=1).max() < 0.5, series["role"]
+        assert error < 0.5, series["role"]
         assert alignment["rotation_deg"] == pytest.approx(motion["rotation_deg"], abs=0.5)
-
-
-def _axis_angle(axis, degrees) -> np.ndarray:
-    """Rodrigues' rotation formula (any linear-algebra textbook)."""
-    a = np.asarray(axis, float) / np.linalg.norm(axis)
-    k = np.array([[0, -a[2], a[1]], [a[2], 0, -a[0]], [-a[1], a[0], 0]])
-    theta = np.radians(degrees)
-    return np.eye(3) + np.sin(theta) * k + (1 - np.cos(theta)) * k @ k
-
-
-def _rigid(points, matrix, centre, translation) -> np.ndarray:
-    centre = np.asarray(centre, float)
-    return (points - centre) @ np.asarray(matrix).T + centre + np.asarray(translation, float)
 
 
 def test_neuro_writes_every_output_file(neuro, tmp_path_factory):
@@ -210,6 +194,14 @@ def test_enhanced_multiframe_with_useless_descriptions_reads_the_same(tmp_path):
     _check_flags(findings, truth)
 
 
+NO_MOTION = {
+    "axis": [0, 0, 1],
+    "rotation_deg": 0.0,
+    "center_mm": [0, 0, 0],
+    "translation_mm": [0, 0, 0],
+}
+
+
 def test_motion_free_series_keep_the_scanners_alignment(tmp_path):
     # Without simulated motion the truth is the identity: series the cheap check finds aligned
     # skip the optimizer (and qc says so), the others must still come out within 0.5 mm.
@@ -224,13 +216,14 @@ def test_motion_free_series_keep_the_scanners_alignment(tmp_path):
         if not series.get("measured") or series.get("anchor"):
             continue
         alignment = series["alignment"]
-        got = _rigid(
+        error = motion_error(
             centres,
-            np.reshape(alignment["matrix"], (3, 3)),
+            NO_MOTION,
+            alignment["matrix"],
             alignment["center_mm"],
             alignment["translation_mm"],
         )
-        assert np.linalg.norm(got - centres, axis=1).max() < 0.5, series["role"]
+        assert error < 0.5, series["role"]
         if series["role"] in skipped:
             assert alignment["translation_mm"] == [0.0, 0.0, 0.0]
             assert alignment["rotation_deg"] == 0.0
