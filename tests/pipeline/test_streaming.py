@@ -253,3 +253,25 @@ def test_series_are_measured_in_order_while_the_next_ones_register(tmp_path, mon
     # second was measured.
     assert events.index(("load", order[2])) < events.index(("measure", order[1]))
     assert analysis.findings["series"]
+
+
+def test_a_series_that_fails_to_load_stops_the_stream_with_its_error(tmp_path, monkeypatch):
+    # A series that cannot be read while others register: the reader's error reaches the
+    # caller, the registrations already running end, and nothing waits forever.
+    from sigreport.errors import InputError
+    from sigreport.synth import generate_study
+
+    study = generate_study("neuro", tmp_path / "case", motion=False)
+    calls: list[str] = []
+
+    def failing(stack, **kwargs):
+        calls.append(stack.role.value)
+        if len(calls) == 4:
+            raise InputError(f"{stack.role.value}: unreadable pixel data")
+        return load_stack(stack, **kwargs)
+
+    monkeypatch.setattr(pipeline, "load_stack", failing)
+    monkeypatch.setattr(pipeline.os, "cpu_count", lambda: 2)
+    with pytest.raises(InputError, match="unreadable pixel data"):
+        analyze_case(study.case_path, study_dir=study.study_dir, register=True)
+    assert len(calls) == 4
