@@ -76,6 +76,9 @@ class AlignmentSettings:
     max_translation_mm: float
     max_rotation_deg: float
     poor_metric: float
+    # The finest pyramid level's voxels are at least this size (mm): a finer anchor is binned
+    # to it. 0 (the key absent from a site's file): the anchor's own voxels.
+    finest_spacing_mm: float = 0.0
 
 
 _REGISTRATION_KEYS = {
@@ -92,6 +95,8 @@ _REGISTRATION_KEYS = {
     "aligned_tolerance_mm",
 }
 _QC_KEYS = {"max_translation_mm", "max_rotation_deg", "poor_metric"}
+# Keys a site's older copy of alignment.toml may lack (docs/CHANGES.md).
+_OPTIONAL_KEYS = {"finest_spacing_mm"}
 
 
 def _number(table: dict[str, Any], key: str, where: str, *, positive: bool = True) -> float:
@@ -118,7 +123,7 @@ def load_settings(site_lexicon: Path | None = None) -> AlignmentSettings:
     qc = table.get("qc")
     if not isinstance(reg, dict) or not isinstance(qc, dict):
         raise InputError("alignment.toml: needs the tables [registration] and [qc]")
-    check_keys(reg, _REGISTRATION_KEYS, "alignment.toml [registration]")
+    check_keys(reg, _REGISTRATION_KEYS | _OPTIONAL_KEYS, "alignment.toml [registration]")
     check_keys(qc, _QC_KEYS, "alignment.toml [qc]")
     where = "alignment.toml [registration]"
     for key in sorted(_REGISTRATION_KEYS - set(reg)):
@@ -162,6 +167,9 @@ def load_settings(site_lexicon: Path | None = None) -> AlignmentSettings:
         max_translation_mm=_number(qc, "max_translation_mm", "alignment.toml [qc]"),
         max_rotation_deg=_number(qc, "max_rotation_deg", "alignment.toml [qc]"),
         poor_metric=_number(qc, "poor_metric", "alignment.toml [qc]", positive=False),
+        finest_spacing_mm=(
+            _number(reg, "finest_spacing_mm", where) if "finest_spacing_mm" in reg else 0.0
+        ),
     )
 
 
@@ -329,9 +337,33 @@ def _anchor_pyramid(
 ) -> _AnchorPyramid:
     """The cropped anchor (:func:`_anchor_crop`; smoothing a whole 1 mm head is the slow part)
     in float32, smoothed once per level."""
-    base = sitk.Cast(crop, sitk.sitkFloat32)
+    base = _binned(sitk.Cast(crop, sitk.sitkFloat32), settings.finest_spacing_mm, threads)
     levels = tuple(_smoothed(base, sigma, threads) for sigma in settings.smoothing_sigmas_mm)
     return _AnchorPyramid(base=base, levels=levels, box=wide)
+
+
+def _binned(image: sitk.Image, finest_mm: float, threads: int) -> sitk.Image:
+    """``image`` with its voxels averaged in bins of whole voxels, per axis, so that each
+    axis' spacing is as close to ``finest_mm`` as whole voxels allow without exceeding it
+    (0.5 mm -> 1 mm, 0.8 mm kept, 0.3 mm -> 0.9 mm; coarser axes kept). The pyramid's finest
+    level then costs what a 1 mm anchor's does: ITK's per-level set-up and the anchor's
+    smoothing grow with its voxel count, while the metric's 50,000 samples do not need
+    sub-millimetre voxels (docs/performance.md, Registration). Binning averages, so it is also
+    the anti-aliasing filter (ITK's BinShrinkImageFilter; the output's origin is the first
+    bin's centre, so the geometry stays exact)."""
+    if finest_mm <= 0:
+        return image
+    # A tiny tolerance: 0.5 mm stored as 0.49999999 still bins by 2.
+    factors = [max(1, int(math.floor(finest_mm / step + 1e-6))) for step in image.GetSpacing()]
+    factors = [
+        max(1, min(f, n // _MIN_CROP_VOXELS)) for f, n in zip(factors, image.GetSize(), strict=True)
+    ]
+    if all(f == 1 for f in factors):
+        return image
+    shrinker = sitk.BinShrinkImageFilter()
+    shrinker.SetShrinkFactors(factors)
+    shrinker.SetNumberOfThreads(threads)
+    return shrinker.Execute(image)
 
 
 def _anchor_key(

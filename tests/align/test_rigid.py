@@ -308,3 +308,73 @@ def test_series_one_at_a_time_match_all_at_once_and_share_the_anchor(images, mon
     register_series(near, {"moved": movings["moved"]}, box_mm=BOX)
     register_series(t1, {"moved": movings["moved"]}, box_mm=(BOX[0] - 1.0, BOX[1]))
     assert len(built) == 3
+
+
+# --------------------------------------------------------------------------------------------
+# Sub-millimetre anchors: binned to the finest level's spacing (alignment.toml)
+
+
+def test_binning_averages_whole_voxels_and_keeps_the_geometry():
+    rng = np.random.default_rng(11)
+    # (z, y, x) = 40 slices of 3 mm, 64 x 64 of 0.5 mm: x and y bin by 2, z is kept.
+    voxels = rng.normal(size=(40, 64, 64)).astype(np.float32)
+    image = sitk.GetImageFromArray(voxels)
+    image.SetSpacing((0.5, 0.5, 3.0))
+    image.SetOrigin((-10.0, 5.0, 2.0))
+    tilt = math.radians(10.0)
+    image.SetDirection(
+        (1, 0, 0, 0, math.cos(tilt), -math.sin(tilt), 0, math.sin(tilt), math.cos(tilt))
+    )
+    binned = rigid._binned(image, 1.0, 1)
+    assert binned.GetSize() == (32, 32, 40)
+    assert binned.GetSpacing() == pytest.approx((1.0, 1.0, 3.0))
+    assert binned.GetDirection() == pytest.approx(image.GetDirection())
+    # Each bin's centre, in patient space (PS3.3 C.7.6.2.1.1 geometry through SimpleITK's own
+    # index-to-point mapping), is the centre of the voxels it averages.
+    assert binned.GetOrigin() == pytest.approx(
+        image.TransformContinuousIndexToPhysicalPoint((0.5, 0.5, 0.0))
+    )
+    assert binned.TransformIndexToPhysicalPoint((7, 3, 9)) == pytest.approx(
+        image.TransformContinuousIndexToPhysicalPoint((14.5, 6.5, 9.0))
+    )
+    # Oracle: numpy's mean over each 2 x 2 block of x and y.
+    expected = voxels.reshape(40, 32, 2, 32, 2).mean(axis=(2, 4))
+    assert np.allclose(sitk.GetArrayFromImage(binned), expected, atol=1e-6)
+    # Voxels at or above the spacing (and 0.8 mm, which 2 voxels would take past 1 mm) stay.
+    assert rigid._binned(image, 0.0, 1) is image
+    coarse = sitk.Image(40, 40, 40, sitk.sitkFloat32)
+    coarse.SetSpacing((0.8, 1.0, 5.0))
+    assert rigid._binned(coarse, 1.0, 1) is coarse
+
+
+def test_a_sub_millimetre_anchor_costs_a_1_mm_one_and_recovers_the_motion(images):
+    t1, t2 = images
+    # A 0.5 mm anchor (a 3 T 3D series) covering the ROIs' box and the margin.
+    fine = sitk.Image(216, 216, 216, sitk.sitkFloat32)
+    fine.SetSpacing((0.5, 0.5, 0.5))
+    fine.SetOrigin((-53.75, -53.75, -53.75))
+    anchor = sitk.Resample(t1, fine, sitk.Transform(), sitk.sitkLinear, 0.0)
+    a = motion(1.5, -1.0, 2.0, (1.0, -1.5, 1.0))
+    moving = sitk.Resample(t2, t1, a, sitk.sitkLinear, 0.0)
+    rigid.clear_anchor_cache()
+    found = register_rigid(anchor, moving, box_mm=BOX)
+    assert found.method == "rigid"
+    assert max_point_error(found.transform, a.GetInverse()) < TOL_MM
+    assert rotation_error_deg(found.transform, a.GetInverse()) < TOL_DEG
+    # The pyramid was built on 1 mm voxels (the bundled finest_spacing_mm), not 0.5 mm.
+    (pyramid,) = rigid._ANCHOR_CACHE.values()
+    assert pyramid.base.GetSpacing() == pytest.approx((1.0, 1.0, 1.0))
+    rigid.clear_anchor_cache()
+
+
+def test_finest_spacing_is_optional_in_a_site_file_and_validated(tmp_path: Path):
+    text = (bundled_dir() / "alignment.toml").read_text()
+    assert load_settings().finest_spacing_mm == 1.0
+    lines = [line for line in text.splitlines() if not line.startswith("finest_spacing_mm")]
+    (tmp_path / "alignment.toml").write_text("\n".join(lines) + "\n")
+    assert load_settings(tmp_path).finest_spacing_mm == 0.0  # the anchor's own voxels
+    (tmp_path / "alignment.toml").write_text(
+        text.replace("finest_spacing_mm = 1.0", "finest_spacing_mm = -1.0")
+    )
+    with pytest.raises(InputError, match="finest_spacing_mm must be positive"):
+        load_settings(tmp_path)
