@@ -830,6 +830,12 @@ def stream_series(
         Each job's alignment, by job key.
     """
     known = dict(known or {})
+    # Each series' alignment when it needs no registration (found earlier, or the scanner's
+    # frame of reference); None: to be registered.
+    given: dict[Role | str, Alignment | None] = {
+        job.key: known[job.key] if job.key in known else _scanner_alignment(plan, job)[0]
+        for job in jobs
+    }
     found: dict[Role | str, Alignment] = {}
     slots = max(1, min(limits.SERIES_IN_FLIGHT, os.cpu_count() or 1))
     waiting = deque(jobs)
@@ -840,9 +846,7 @@ def stream_series(
             while waiting or in_flight:
                 while waiting:
                     job = waiting[0]
-                    alignment = known.get(job.key)
-                    if alignment is None:
-                        alignment = _scanner_alignment(plan, job)[0]
+                    alignment = given[job.key]
                     if not _joins(in_flight, job, alignment is None, slots):
                         break
                     waiting.popleft()
